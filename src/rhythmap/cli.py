@@ -1,0 +1,223 @@
+"""The ``rhythmap`` command: analyse a stack, run the demo, convert to OME-Zarr, make samples.
+
+Every analysis option comes from :data:`rhythmap.options.OPTIONS`, so the
+command line, the napari panel and the runner cannot drift apart. Errors the
+user can fix end the program with exit code 2 and one paragraph, never a
+traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .errors import InputError, RhythmapError
+from .options import OPTIONS
+
+CAUTION = ("rhythmap is a research tool, not a diagnostic device: its rates are not clinical heart-rate or "
+           "ciliary-beat-frequency measurements. Defer to clinical standards and local practice.")
+
+DEFAULT_RATE_RANGE = (20.0, 240.0)
+
+
+def _flag(name: str) -> str:
+    return "--" + name.replace("_", "-")
+
+
+def add_analysis_arguments(p: argparse.ArgumentParser) -> None:
+    """Arguments shared by every command that runs the engine (also used by the runner)."""
+    p.add_argument("--frame-interval", type=float, metavar="S",
+                   help="seconds between frames (overrides the file's metadata; required if it has none)")
+    p.add_argument("--pixel-size", type=float, metavar="UM",
+                   help="pixel edge in micrometres (overrides the file's metadata)")
+    p.add_argument("--rate-range", type=float, nargs=2, metavar=("LO", "HI"), default=None,
+                   help=f"band of rates to look for, beats per minute (default {DEFAULT_RATE_RANGE[0]:g} "
+                        f"{DEFAULT_RATE_RANGE[1]:g})")
+    p.add_argument("--channel", type=int, help="channel index for multi-channel stacks")
+    p.add_argument("--plane", type=int, help="focal plane (Z) index for multi-plane stacks")
+    group = p.add_argument_group("analysis options")
+    for opt in OPTIONS:
+        if not opt.cli:
+            continue
+        if opt.kind is bool:
+            group.add_argument(_flag(opt.name), dest=opt.name, action="store_true", default=None,
+                               help=opt.help)
+        else:
+            group.add_argument(_flag(opt.name), dest=opt.name, type=str, default=None,
+                               metavar=opt.kind.__name__.upper(), help=f"{opt.help} (default {opt.default})")
+
+
+def options_from_args(args) -> dict:
+    """The analysis options a user set on the command line (validated later by the engine)."""
+    return {o.name: getattr(args, o.name) for o in OPTIONS if getattr(args, o.name, None) is not None}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="rhythmap", description="Maps of where rhythmic tissue beats, how fast, how regularly and in "
+                                     "which order. " + CAUTION)
+    parser.add_argument("--version", action="version", version=f"rhythmap {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    a = sub.add_parser("analyze", help="analyse one stack and write a result folder")
+    a.add_argument("stack", help="TIFF / OME-TIFF / ImageJ file, Zarr or OME-Zarr folder, or video")
+    a.add_argument("-o", "--out", required=True, help="result folder to create")
+    a.add_argument("--overwrite", action="store_true", help="replace an existing result folder")
+    a.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_analysis_arguments(a)
+
+    d = sub.add_parser("demo", help="analyse the shipped sample stack and print where the results are")
+    d.add_argument("-o", "--out", default="rhythmap-demo", help="result folder (default ./rhythmap-demo)")
+    d.add_argument("--overwrite", action="store_true", help="replace an existing demo result")
+
+    c = sub.add_parser("convert", help="convert a stack to OME-Zarr with the whole time axis in each chunk")
+    c.add_argument("stack")
+    c.add_argument("out", help="folder to create, e.g. stack.ome.zarr")
+    c.add_argument("--frame-interval", type=float, metavar="S")
+    c.add_argument("--pixel-size", type=float, metavar="UM")
+    c.add_argument("--channel", type=int)
+    c.add_argument("--plane", type=int)
+    c.add_argument("--overwrite", action="store_true")
+
+    m = sub.add_parser("make-samples", help="regenerate the synthetic sample stacks and their ground truth")
+    m.add_argument("folder", nargs="?", default="sample_stacks")
+    return parser
+
+
+class _Bar:
+    """A terminal progress bar over the analysis ticks (stderr, so stdout stays parseable)."""
+
+    def __init__(self, enabled: bool):
+        self.enabled = enabled
+        self.bar = None
+        self.stage = None
+
+    def __call__(self, done, total, stage):
+        if not self.enabled:
+            return
+        from tqdm import tqdm
+
+        if stage != self.stage and stage != "done":
+            if self.bar is not None:
+                self.bar.close()
+            self.bar = tqdm(total=total, desc=stage, unit="tile", file=sys.stderr, leave=False)
+            self.stage = stage
+        if self.bar is not None:
+            self.bar.n = done
+            self.bar.refresh()
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+
+
+def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, rate_range_bpm=None,
+                 channel=None, plane=None, overwrite=False, progress=None, options=None):
+    """Open, analyse and save one stack; the shared path of ``analyze`` and ``demo``."""
+    from .engine import analyze
+    from .result import ResultExistsError
+    from .stack import open_stack
+
+    out = Path(out)
+    if out.exists() and not overwrite:  # fail before the work, not after it
+        raise ResultExistsError(
+            f"{str(out)!r} already exists; nothing was written. Choose another folder with -o, or add "
+            "--overwrite to replace it.")
+    stack = open_stack(stack_path, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
+    result = analyze(stack, rate_range_bpm or DEFAULT_RATE_RANGE, progress=progress, **(options or {}))
+    from .report import report_writers
+
+    result.save(out, overwrite=overwrite, extra_files=report_writers(result, stack))
+    return result
+
+
+def print_summary(result, out, stream=sys.stdout) -> None:
+    s = result.summary()
+    lines = [f"rhythmap {__version__}: results written to {Path(out).resolve()}",
+             f"  frames {result.input.get('shape', ['?'])[0]} x {result.shape[0]} x {result.shape[1]} px, "
+             f"frame interval {result.frame_interval_s:g} s",
+             f"  rhythmic area        {100 * s['rhythmic_fraction']:.1f} % of the field",
+             f"  rate (median, IQR)   {s['rate_median_bpm']:.2f} bpm, {s['rate_iqr_bpm']:.2f} bpm"]
+    table = result.region_table
+    if table is not None and len(table):
+        lines.append("  regions:")
+        lines.append("    " + table.to_string(index=False, float_format=lambda v: f"{v:.3g}").replace("\n", "\n    "))
+    for label, ref in sorted(result.references.items()):
+        lines.append(f"  reference {label}: loop score {ref.score:.2f}, {len(ref.beat_times_s)} beats, "
+                     f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}")
+    for w in result.parameters.get("warnings", []):
+        lines.append(f"  warning: {w}")
+    lines.append(f"  took {result.timings.get('total_s', float('nan')):.1f} s")
+    lines.append("  " + CAUTION)
+    print("\n".join(lines), file=stream)
+
+
+def find_sample(name="well_sheet.tif") -> Path:
+    """The shipped sample stack: in ./sample_stacks, beside the source tree, or made afresh."""
+    here = Path(__file__).resolve()
+    for folder in (Path.cwd() / "sample_stacks", here.parents[2] / "sample_stacks"):
+        if (folder / name).exists():
+            return folder / name
+    import tempfile
+
+    from .samples import write_samples
+
+    folder = Path(tempfile.mkdtemp(prefix="rhythmap-samples-"))
+    write_samples(folder)
+    return folder / name
+
+
+def _convert(args) -> None:
+    from .convert import convert_stack
+
+    out = convert_stack(args.stack, args.out, frame_interval_s=args.frame_interval,
+                        pixel_size_um=args.pixel_size, channel=args.channel, plane=args.plane,
+                        overwrite=args.overwrite)
+    print(f"wrote {out}")
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        if args.command == "analyze":
+            bar = _Bar(not args.quiet and sys.stderr.isatty())
+            try:
+                result = run_analysis(args.stack, args.out, frame_interval_s=args.frame_interval,
+                                      pixel_size_um=args.pixel_size, rate_range_bpm=args.rate_range,
+                                      channel=args.channel, plane=args.plane, overwrite=args.overwrite,
+                                      progress=bar, options=options_from_args(args))
+            finally:
+                bar.close()
+            print_summary(result, args.out)
+        elif args.command == "demo":
+            sample = find_sample()
+            print(f"analysing the sample stack {sample} (a synthetic culture well; see sample_stacks/README.md)")
+            t0 = time.perf_counter()
+            result = run_analysis(sample, args.out, rate_range_bpm=(20, 150), overwrite=args.overwrite,
+                                  progress=_Bar(sys.stderr.isatty()))
+            print_summary(result, args.out)
+            print(f"  demo wall time {time.perf_counter() - t0:.1f} s")
+        elif args.command == "convert":
+            _convert(args)
+        elif args.command == "make-samples":
+            from .samples import write_samples
+
+            for path in write_samples(Path(args.folder)):
+                print(f"wrote {path}")
+    except RhythmapError as exc:
+        print(f"rhythmap: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("rhythmap: interrupted; no partial result was left behind.", file=sys.stderr)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,81 @@
+"""Convert any readable stack into an OME-Zarr image the engine streams best.
+
+The output keeps the whole time axis in each (T, 128, 128) chunk, so a tile
+of the engine reads whole chunks and never regroups frames in memory; it is
+also what the batch runner sends to cluster workers (a TIFF-backed dask array
+cannot travel to another process). Written beside the destination, renamed
+when complete.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import uuid
+from pathlib import Path
+
+import numpy as np
+
+from . import omezarr
+from .errors import ResultExistsError
+from .stack import Stack, open_stack
+
+CHUNK_YX = 128
+
+
+def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, channel=None, plane=None,
+                  overwrite=False, progress=None) -> Path:
+    """Write ``source`` as an OME-Zarr (t, y, x) image at ``out`` and return the path.
+
+    Parameters
+    ----------
+    source : path, array or Stack
+        Anything :func:`rhythmap.open_stack` reads (or an opened Stack).
+    out : path
+        Folder to create (conventionally ending in ``.ome.zarr``).
+    frame_interval_s, pixel_size_um, channel, plane
+        As for :func:`rhythmap.open_stack`.
+    overwrite : bool
+        Replace an existing ``out``.
+    progress : callable, optional
+        ``progress(done_rows, total_rows)``.
+
+    Raises
+    ------
+    ResultExistsError
+        If ``out`` exists and ``overwrite`` is False.
+
+    Notes
+    -----
+    The stack is read one band of 128 image rows at a time (all frames of the
+    band), so memory stays at T x 128 x X pixels and every output chunk is
+    written once.
+    """
+    stack = source if isinstance(source, Stack) else open_stack(
+        source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
+    dest = Path(out)
+    if dest.exists() and not overwrite:
+        raise ResultExistsError(f"{str(dest)!r} already exists; choose another name or add --overwrite.")
+    tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
+    t, y, x = stack.shape
+    dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
+    try:
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        arr = omezarr.create_stack(tmp, (t, y, x), dtype, frame_interval_s=stack.frame_interval_s,
+                                   pixel_size_um=stack.pixel_size_um, chunk_yx=CHUNK_YX)
+        for y0 in range(0, y, CHUNK_YX):
+            band = np.asarray(stack.data[:, y0:y0 + CHUNK_YX, :].compute(scheduler="threads"))
+            arr[:, y0:y0 + band.shape[1], :] = band.astype(dtype, copy=False)
+            if progress is not None:
+                progress(min(y, y0 + CHUNK_YX), y)
+        if dest.exists():
+            trash = dest.parent / f".{dest.name}.old-{uuid.uuid4().hex[:8]}"
+            os.replace(dest, trash)
+            os.replace(tmp, dest)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(tmp, dest)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return dest

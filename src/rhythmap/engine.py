@@ -1,0 +1,371 @@
+"""Passes over the data: tiling, the memory bound, progress and cancellation.
+
+The only module that knows about dask. A pass builds one task graph in which
+every tile is a (T, ty, tx) block holding the whole time axis (plus a halo of
+``pooling_radius_px`` pixels for the spatial pooling), runs a pure-numpy kernel
+on each tile and returns small per-tile results (maps, binned traces). One
+graph per pass means every chunk of the input is read and decompressed once
+per pass; the tile size comes from a memory budget, not a constant. The same
+graph runs on dask's thread pool or, when a ``distributed.Client`` is active,
+on its workers.
+
+Pass 1 ("maps"): pooling, detrending, spectral maps, and the binned traces of
+the beating pixels that make the frame Gram matrix of the rhythm reference.
+Pass 2 ("phase"): lock-in of every pixel against its region's reference.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+import warnings
+from dataclasses import dataclass
+from typing import Any, Callable, Iterator
+
+import dask
+import dask.array as da
+import numpy as np
+
+from . import preprocess, spectral
+from ._version import __version__
+from .errors import CancelledError, InputError
+from .options import validate_options, validate_rate_range
+from .result import MAP_NAMES, RhythmResult
+from .stack import Stack, open_stack
+
+#: Bytes of working memory per pixel per frame while a tile is analysed
+#: (float32 copy, pooled copy, detrended copy, windowed copy, complex spectrum,
+#: power), measured roughly from the kernel's allocations.
+WORK_BYTES_PER_SAMPLE = 28
+
+TILE_TASK_PREFIX = "rhythmap-tile"
+
+ProgressFn = Callable[[int, int, str], Any]
+
+
+@dataclass(frozen=True)
+class Progress:
+    """One progress tick: ``done`` of ``total`` units of the whole analysis, in ``stage``."""
+
+    done: int
+    total: int
+    stage: str
+
+
+@dataclass(frozen=True)
+class TilePlan:
+    """How a (T, Y, X) stack is cut into full-time tiles."""
+
+    tile_shape: tuple[int, int]
+    chunks: tuple[tuple[int, ...], tuple[int, ...]]
+    halo: int
+    n_tiles: int
+    aligned: bool  # tiles are unions of whole input chunks spanning all of T
+
+
+def plan_tiles(shape, input_chunks, *, memory_budget_mb: float, halo: int,
+               n_parallel: int | None = None) -> TilePlan:
+    """Choose a tile shape (ty, tx) from a memory budget and the input's chunks.
+
+    The budget is shared by the tiles analysed at once (one per worker
+    thread); a tile gets ``budget / n_parallel`` bytes, i.e. about
+    ``budget / (n_parallel * T * WORK_BYTES_PER_SAMPLE)`` pixels. When the input
+    chunks already span the whole time axis, tiles are made of whole chunks
+    (or split them evenly) so no chunk is read twice.
+    """
+    t, y, x = (int(s) for s in shape)
+    n_parallel = n_parallel or max(1, os.cpu_count() or 1)
+    budget = memory_budget_mb * 2**20 / n_parallel
+    max_px = max(64, int(budget / (t * WORK_BYTES_PER_SAMPLE)))
+    side = max(8, int(math.sqrt(max_px)))
+    cy, cx = (int(c[0]) for c in input_chunks[1:])
+    full_t = len(input_chunks[0]) == 1
+
+    def pick(c, n):
+        if not full_t:
+            return min(n, side)
+        if c <= side:
+            return min(n, c * max(1, side // c))
+        return math.ceil(c / math.ceil(c / side))
+
+    ty, tx = pick(cy, y), pick(cx, x)
+    # Keep the area within budget when one axis is short.
+    if ty * tx > max_px * 2:
+        if ty >= tx:
+            ty = max(1, max_px // tx)
+        else:
+            tx = max(1, max_px // ty)
+    ty, tx = max(ty, halo + 1, 1), max(tx, halo + 1, 1)
+    chunks = (_split(y, ty), _split(x, tx))
+    aligned = full_t and all(len(set(c)) <= 2 for c in input_chunks[1:]) and (ty % cy == 0 or cy % ty == 0) \
+        and (tx % cx == 0 or cx % tx == 0)
+    return TilePlan((ty, tx), chunks, halo, len(chunks[0]) * len(chunks[1]), aligned)
+
+
+def _split(n, size):
+    full, rest = divmod(n, size)
+    return tuple([size] * full + ([rest] if rest else []))
+
+
+def _tile_arrays(data: da.Array, plan: TilePlan):
+    """The tile blocks of a pass (with halo) and their (y0, x0) offsets."""
+    t = data.shape[0]
+    x = data.rechunk((t,) + plan.chunks)
+    if plan.halo:
+        x = da.overlap.overlap(x, depth={0: 0, 1: plan.halo, 2: plan.halo},
+                               boundary={0: "none", 1: "nearest", 2: "nearest"})
+    blocks = x.to_delayed()[0]
+    y_offsets = np.concatenate([[0], np.cumsum(plan.chunks[0])[:-1]])
+    x_offsets = np.concatenate([[0], np.cumsum(plan.chunks[1])[:-1]])
+    tiles = []
+    for iy, y0 in enumerate(y_offsets):
+        for ix, x0 in enumerate(x_offsets):
+            tiles.append((blocks[iy, ix], int(y0), int(x0), plan.chunks[0][iy], plan.chunks[1][ix]))
+    return tiles
+
+
+# ------------------------------------------------------------------ kernels
+def _pooled_detrended(block, halo, basis):
+    """Pool a tile with halo, drop the halo, detrend: (T, ty*tx) float32 and (ty, tx)."""
+    pooled = preprocess.box_pool(block, halo)
+    t, ty, tx = pooled.shape
+    traces = preprocess.detrend(pooled.reshape(t, ty * tx), basis)
+    return traces, (ty, tx)
+
+
+def maps_tile_kernel(block, y0, x0, *, halo, basis, plan, gram_bin):
+    """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
+
+    Returns a dict with ``maps`` (n_maps, ty, tx) float32 in the order of
+    ``spectral`` output keys, and ``bins`` (global bin ids), ``bin_sums``
+    (T, n_bins) float32 and ``bin_counts`` for the Gram matrix.
+    """
+    traces, (ty, tx) = _pooled_detrended(block, halo, basis)
+    out = spectral.spectral_maps(traces, plan)
+    maps = np.stack([out[k].reshape(ty, tx) for k in PASS1_KEYS])
+    detected = out["detected"].astype(bool)
+    yy, xx = np.divmod(np.arange(ty * tx), tx)
+    by = (yy + y0) // gram_bin
+    bx = (xx + x0) // gram_bin
+    ids = (by.astype(np.int64) << 32) + bx
+    ids = ids[detected]
+    if ids.size:
+        uniq, inv = np.unique(ids, return_inverse=True)
+        sums = np.zeros((traces.shape[0], uniq.size), np.float32)
+        np.add.at(sums.T, inv, traces[:, detected].T)
+        counts = np.bincount(inv, minlength=uniq.size)
+    else:
+        uniq = np.zeros(0, np.int64)
+        sums = np.zeros((traces.shape[0], 0), np.float32)
+        counts = np.zeros(0, np.int64)
+    return {"y0": y0, "x0": x0, "maps": maps, "bins": uniq, "bin_sums": sums, "bin_counts": counts}
+
+
+PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")
+
+
+# ------------------------------------------------------------------ running graphs
+def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | None):
+    """Compute per-tile delayed results in one graph, ticking ``on_tile`` per finished tile."""
+    try:
+        from distributed import as_completed, default_client
+
+        client = default_client()
+    except (ImportError, ValueError):
+        client = None
+    if client is not None:
+        futures = client.compute(tasks)
+        index = {f.key: i for i, f in enumerate(futures)}
+        results = [None] * len(futures)
+        try:
+            for fut in as_completed(futures):
+                results[index[fut.key]] = fut.result()
+                on_tile()
+                if cancel is not None and cancel():
+                    raise CancelledError("the analysis was cancelled")
+        finally:
+            client.cancel([f for f in futures if not f.done()])
+        return results
+
+    from dask.callbacks import Callback
+
+    class _Ticks(Callback):
+        def _posttask(self, key, result, dsk, state, worker_id):
+            name = key[0] if isinstance(key, tuple) else key
+            if str(name).startswith(TILE_TASK_PREFIX):
+                on_tile()
+                if cancel is not None and cancel():
+                    raise CancelledError("the analysis was cancelled")
+
+    # Passed to this call only, so concurrent analyses do not see each other's ticks.
+    return list(dask.compute(*tasks, scheduler="threads", callbacks=[_Ticks()._callback]))
+
+
+def _tile_task(fn, block, y0, x0, **kwargs):
+    return dask.delayed(fn, pure=True, name=f"{TILE_TASK_PREFIX}-{fn.__name__}-{dask.base.tokenize(block, y0, x0, kwargs)}")(block, y0, x0, **kwargs)
+
+
+# ------------------------------------------------------------------ public entry points
+def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = None,
+                 **options) -> Iterator[Progress]:
+    """Run the analysis step by step, yielding :class:`Progress` ticks.
+
+    A generator for interactive front ends: every tick is a point where the
+    caller may stop (``close()`` the generator, or let ``cancel()`` return
+    True, which raises :class:`~rhythmap.errors.CancelledError`). The
+    :class:`RhythmResult` is the generator's return value
+    (``StopIteration.value``); :func:`analyze` is the plain-call version.
+
+    Parameters and raised errors are those of :func:`analyze`.
+    """
+    if not isinstance(stack, Stack):
+        stack = open_stack(stack)
+    lo_hi = validate_rate_range(rate_range_bpm)
+    opts = validate_options(options)
+    t_start = time.perf_counter()
+    timings: dict[str, float] = {}
+    t, y, x = stack.shape
+    plan = spectral.plan_spectrum(t, stack.frame_interval_s, lo_hi, false_alarm=opts["false_alarm"],
+                                  min_cycles=opts["min_cycles"],
+                                  trend_cutoff_fraction=opts["trend_cutoff_fraction"])
+    cutoff_hz = opts["trend_cutoff_fraction"] * lo_hi[0] / 60.0
+    basis = preprocess.trend_basis(t, stack.frame_interval_s, cutoff_hz)
+    halo = opts["pooling_radius_px"]
+    if halo and (y <= 2 * halo or x <= 2 * halo):
+        raise InputError(f"pooling_radius_px={halo} is too large for frames of {y} x {x} pixels; "
+                         f"use at most {max(0, (min(y, x) - 1) // 2)}.")
+    tiles_plan = plan_tiles(stack.data.shape, stack.data.chunks, memory_budget_mb=opts["memory_budget_mb"],
+                            halo=halo)
+    if not tiles_plan.aligned and stack.data.nbytes > opts["memory_budget_mb"] * 2**20:
+        warnings.warn(
+            f"{stack.source}: the input's chunks do not hold the whole time axis {stack.data.chunks[0][:3]}..., "
+            "so the stack is regrouped in memory while it is read. For large stacks convert it once "
+            "with `rhythmap convert STACK OUT.ome.zarr` and analyse the converted copy.", stacklevel=2)
+    gram_bin = max(1, math.ceil(math.sqrt(y * x / opts["gram_max_pixels"])))
+    total = tiles_plan.n_tiles
+    done = [0]
+    ticks: list[Progress] = []
+
+    def on_tile():
+        done[0] += 1
+        ticks.append(Progress(done[0], total, "maps"))
+
+    yield Progress(0, total, "maps")
+    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, basis=basis, plan=plan, gram_bin=gram_bin)
+             for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
+    results = yield from _drain(tasks, on_tile, cancel, ticks)
+    timings["maps_pass_s"] = time.perf_counter() - t_start
+
+    maps = np.full((len(PASS1_KEYS), y, x), np.nan, np.float32)
+    for r in results:
+        ty, tx = r["maps"].shape[1:]
+        maps[:, r["y0"]:r["y0"] + ty, r["x0"]:r["x0"] + tx] = r["maps"]
+    m = dict(zip(PASS1_KEYS, maps))
+    nan_map = np.full((y, x), np.nan, np.float32)
+    detected = m["detected"] > 0
+    result = RhythmResult(
+        rate_bpm=m["rate_bpm"], period_s=m["period_s"], amplitude=m["amplitude"],
+        periodicity=m["periodicity"], coherence=nan_map.copy(), phase_rad=nan_map.copy(),
+        delay_s=nan_map.copy(), regions=detected.astype(np.int32),
+        frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
+        parameters={"rate_range_bpm": list(lo_hi), **opts},
+        input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
+        timings={**timings, "total_s": time.perf_counter() - t_start},
+        extra_maps={"peak_score": m["peak_score"]},
+        version=__version__,
+    )
+    yield Progress(total, total, "done")
+    return result
+
+
+def _drain(tasks, on_tile, cancel, ticks):
+    """Run tasks in a worker thread while yielding the ticks it produces.
+
+    The generator stays responsive: the graph runs in a background thread and
+    the caller sees one :class:`Progress` per finished tile.
+    """
+    import queue
+    import threading
+
+    q: "queue.Queue[tuple[str, Any]]" = queue.Queue()
+    stop = threading.Event()
+
+    def tick():
+        on_tile()
+        q.put(("tick", ticks[-1]))
+
+    def is_cancelled():
+        return stop.is_set() or (cancel is not None and cancel())
+
+    def work():
+        try:
+            q.put(("done", _run_tiles(tasks, tick, is_cancelled)))
+        except BaseException as exc:  # handed to the caller's thread
+            q.put(("error", exc))
+
+    th = threading.Thread(target=work, name="rhythmap-pass", daemon=True)
+    th.start()
+    try:
+        while True:
+            kind, payload = q.get()
+            if kind == "tick":
+                yield payload
+            elif kind == "done":
+                return payload
+            else:
+                raise payload
+    finally:
+        stop.set()
+        th.join()
+
+
+def analyze(stack, rate_range_bpm=(30.0, 240.0), progress: ProgressFn | None = None, *,
+            cancel: Callable[[], bool] | None = None, **options) -> RhythmResult:
+    """Map where a stack beats, how fast and how regularly.
+
+    Parameters
+    ----------
+    stack : Stack, path or (T, Y, X) array
+        From :func:`rhythmap.open_stack`; a path or array is opened with it
+        (an array then needs ``frame_interval_s`` via ``open_stack`` first).
+    rate_range_bpm : (float, float)
+        Band of rates to look for, in beats per minute.
+    progress : callable, optional
+        Called as ``progress(done, total, stage)`` after each tile.
+    cancel : callable, optional, keyword-only
+        Polled after each tile; returning True stops the run with
+        :class:`~rhythmap.errors.CancelledError`.
+    **options
+        Keyword-only analysis options, see :data:`rhythmap.options.OPTIONS`.
+
+    Returns
+    -------
+    RhythmResult
+        Maps at the input's (Y, X), tables, references and provenance.
+
+    Raises
+    ------
+    InputError
+        For a rate band above the Nyquist frequency, a recording shorter than
+        a few cycles, or an invalid option.
+    CancelledError
+        If ``cancel`` returned True.
+
+    Examples
+    --------
+    >>> import numpy as np, rhythmap
+    >>> t = np.arange(200)[:, None, None] * 0.05
+    >>> frames = 100 + 10 * np.sin(2 * np.pi * 1.5 * t) * np.ones((1, 6, 6))
+    >>> res = rhythmap.analyze(rhythmap.open_stack(frames, frame_interval_s=0.05), (40, 200))
+    >>> round(float(np.nanmedian(res.rate_bpm)), 1)
+    90.0
+    """
+    gen = iter_analyze(stack, rate_range_bpm, cancel=cancel, **options)
+    while True:
+        try:
+            tick = next(gen)
+        except StopIteration as stop:
+            return stop.value
+        if progress is not None:
+            progress(tick.done, tick.total, tick.stage)

@@ -1,0 +1,224 @@
+"""RhythmResult: the maps, tables and references of one analysis, and their files.
+
+A result folder holds ``maps.ome.zarr`` (OME-NGFF 0.5 on Zarr v3: one channel
+per map named after the attribute, physical scale on y and x, plus the region
+labels as an NGFF label image), ``regions.csv``, ``beats.csv``,
+``references.json`` and ``run.json`` (version, parameters, input identity,
+timings). A folder is written beside its destination and renamed into place
+when complete, so a reader never sees half a result, and an existing result is
+replaced only when the caller asks for it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError, ResultExistsError
+
+#: Maps of the public contract, in channel order of ``maps.ome.zarr``.
+MAP_NAMES = ("rate_bpm", "period_s", "amplitude", "periodicity", "coherence", "phase_rad", "delay_s", "regions")
+
+#: Physical unit of each map (UDUNITS-style), for file metadata and colour bars.
+MAP_UNITS = {"rate_bpm": "1/minute", "period_s": "second", "amplitude": "intensity",
+             "periodicity": "1", "coherence": "1", "phase_rad": "radian", "delay_s": "second",
+             "regions": "label"}
+
+RUN_FILE = "run.json"
+MAPS_FILE = "maps.ome.zarr"
+REGIONS_FILE = "regions.csv"
+BEATS_FILE = "beats.csv"
+REFERENCES_FILE = "references.json"
+REPORT_FILE = "report.png"
+
+
+@dataclass
+class RhythmResult:
+    """Everything one analysis produced.
+
+    Maps are (Y, X) float32 at the input's size (``regions`` is int32, 0 = no
+    rhythm); NaN marks pixels where a map has no value.
+    """
+
+    rate_bpm: np.ndarray
+    period_s: np.ndarray
+    amplitude: np.ndarray
+    periodicity: np.ndarray
+    coherence: np.ndarray
+    phase_rad: np.ndarray
+    delay_s: np.ndarray
+    regions: np.ndarray
+    frame_interval_s: float
+    pixel_size_um: float | None = None
+    region_table: pd.DataFrame = field(default_factory=pd.DataFrame)
+    references: dict = field(default_factory=dict)
+    parameters: dict = field(default_factory=dict)
+    input: dict = field(default_factory=dict)
+    timings: dict = field(default_factory=dict)
+    extra_maps: dict = field(default_factory=dict)
+    version: str = ""
+
+    @property
+    def maps(self) -> dict[str, np.ndarray]:
+        """The contract's maps by name, in channel order."""
+        return {name: getattr(self, name) for name in MAP_NAMES}
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.rate_bpm.shape)
+
+    def summary(self) -> dict[str, Any]:
+        """A few headline numbers: rhythmic area, median rate and its spread."""
+        rate = self.rate_bpm[np.isfinite(self.rate_bpm)]
+        out = {"rhythmic_fraction": float(rate.size / self.rate_bpm.size),
+               "rate_median_bpm": float(np.median(rate)) if rate.size else float("nan"),
+               "rate_iqr_bpm": float(np.subtract(*np.percentile(rate, [75, 25]))) if rate.size else float("nan"),
+               "n_regions": int(len(np.unique(self.regions[self.regions > 0])))}
+        return out
+
+    def save(self, path, *, overwrite: bool = False, extra_files: dict | None = None) -> Path:
+        """Write the result folder at ``path`` (see module notes), atomically.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+            The folder to create.
+        overwrite : bool, keyword-only
+            Replace an existing result folder. Without it an existing folder
+            is an error and is left untouched.
+        extra_files : dict, optional
+            ``{file name: callable(folder_path)}`` writers of more files (the
+            report), run inside the temporary folder before it is renamed.
+
+        Returns
+        -------
+        pathlib.Path
+            The folder written.
+
+        Raises
+        ------
+        ResultExistsError
+            If ``path`` exists and ``overwrite`` is False.
+        """
+        dest = Path(path)
+        if dest.exists() and not overwrite:
+            raise ResultExistsError(
+                f"{str(dest)!r} already exists; nothing was written. Choose another output folder, "
+                "or pass overwrite=True (--overwrite on the command line) to replace it.")
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
+        try:
+            tmp.mkdir()
+            self._write_into(tmp)
+            for writer in (extra_files or {}).values():
+                writer(tmp)
+            _write_json(tmp / RUN_FILE, self._run_record())  # last: marks the folder complete
+            if dest.exists():
+                trash = dest.parent / f".{dest.name}.old-{uuid.uuid4().hex[:8]}"
+                os.replace(dest, trash)
+                os.replace(tmp, dest)
+                shutil.rmtree(trash, ignore_errors=True)
+            else:
+                os.replace(tmp, dest)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        return dest
+
+    def _run_record(self) -> dict[str, Any]:
+        return {"format": "rhythmap-result", "format_version": 1, "version": self.version,
+                "parameters": self.parameters, "input": self.input, "timings": self.timings,
+                "frame_interval_s": self.frame_interval_s, "pixel_size_um": self.pixel_size_um,
+                "shape": list(self.shape), "summary": self.summary(),
+                "extra_maps": sorted(self.extra_maps)}
+
+    def _write_into(self, folder: Path) -> None:
+        from . import omezarr
+
+        channels = {name: getattr(self, name) for name in MAP_NAMES}
+        channels.update(self.extra_maps)
+        omezarr.write_maps(folder / MAPS_FILE, channels, pixel_size_um=self.pixel_size_um,
+                           labels={"regions": self.regions}, units=MAP_UNITS)
+        table = self.region_table if self.region_table is not None else pd.DataFrame()
+        table.to_csv(folder / REGIONS_FILE, index=False)
+        beats = beats_table(self.references)
+        beats.to_csv(folder / BEATS_FILE, index=False)
+        _write_json(folder / REFERENCES_FILE,
+                    {str(k): (ref.to_dict() if hasattr(ref, "to_dict") else ref) for k, ref in self.references.items()})
+
+
+def beats_table(references: dict) -> pd.DataFrame:
+    """One row per beat of every region's reference: region, beat index, time, interval."""
+    rows = []
+    for label, ref in references.items():
+        times = np.asarray(getattr(ref, "beat_times_s", []), float)
+        for i, t in enumerate(times):
+            rows.append({"region": int(label), "beat": i + 1, "time_s": float(t),
+                         "interval_s": float(t - times[i - 1]) if i else float("nan")})
+    return pd.DataFrame(rows, columns=["region", "beat", "time_s", "interval_s"])
+
+
+def _write_json(path: Path, obj) -> None:
+    path.write_text(json.dumps(obj, indent=2, default=_json_default))
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"cannot store {type(o).__name__} in JSON")
+
+
+def is_complete(path) -> bool:
+    """True if ``path`` is a finished result folder (its run.json is present and readable)."""
+    try:
+        rec = json.loads((Path(path) / RUN_FILE).read_text())
+    except (OSError, ValueError):
+        return False
+    return rec.get("format") == "rhythmap-result"
+
+
+def load_result(path) -> RhythmResult:
+    """Read a result folder written by :meth:`RhythmResult.save`.
+
+    Raises
+    ------
+    InputError
+        If ``path`` is not a complete rhythmap result folder.
+    """
+    from . import omezarr
+    from .reference import RhythmReference
+
+    folder = Path(path)
+    if not is_complete(folder):
+        raise InputError(f"{str(folder)!r} is not a complete rhythmap result folder (no valid {RUN_FILE}).")
+    rec = json.loads((folder / RUN_FILE).read_text())
+    channels, _ = omezarr.read_maps(folder / MAPS_FILE)
+    table_path = folder / REGIONS_FILE
+    try:
+        table = pd.read_csv(table_path)
+    except (pd.errors.EmptyDataError, FileNotFoundError):
+        table = pd.DataFrame()
+    refs = {}
+    ref_path = folder / REFERENCES_FILE
+    if ref_path.exists():
+        for k, d in json.loads(ref_path.read_text()).items():
+            refs[int(k)] = RhythmReference.from_dict(d)
+    extra = {k: channels[k] for k in rec.get("extra_maps", []) if k in channels}
+    return RhythmResult(
+        **{name: (channels[name].astype(np.int32) if name == "regions" else channels[name]) for name in MAP_NAMES},
+        frame_interval_s=rec["frame_interval_s"], pixel_size_um=rec.get("pixel_size_um"),
+        region_table=table, references=refs, parameters=rec.get("parameters", {}),
+        input=rec.get("input", {}), timings=rec.get("timings", {}), extra_maps=extra,
+        version=rec.get("version", ""))

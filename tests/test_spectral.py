@@ -1,0 +1,117 @@
+"""Per-pixel spectral kernels against scipy.signal and exact synthetic frequencies."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.signal
+
+from rhythmap import spectral
+from rhythmap.errors import InputError
+from rhythmap.preprocess import detrend, trend_basis
+
+DT = 0.05
+T = 400
+
+
+def _plan(rate_range=(30, 180), n=T, dt=DT, **kw):
+    return spectral.plan_spectrum(n, dt, rate_range, **kw)
+
+
+def test_peak_matches_scipy_periodogram_within_one_bin(rng):
+    """Reference: scipy.signal.periodogram (Hann window), same traces, peak inside the band."""
+    t = np.arange(T) * DT
+    f_true = rng.uniform(0.6, 2.8, 300)
+    x = np.sin(2 * np.pi * f_true[None, :] * t[:, None] + rng.uniform(0, 6.28, 300)) \
+        + 0.8 * rng.standard_normal((T, 300))
+    plan = _plan()
+    out = spectral.spectral_maps(x.astype(np.float32), plan)
+    freqs, pxx = scipy.signal.periodogram(x, fs=1 / DT, window="hann", detrend=False, axis=0)
+    k_lo, k_hi = plan.band_bins
+    f_ref = freqs[k_lo + np.argmax(pxx[k_lo:k_hi + 1], axis=0)]
+    f_ours = out["rate_bpm"] / 60
+    assert np.all(out["detected"] == 1)
+    assert np.max(np.abs(f_ours - f_ref)) <= plan.bin_hz + 1e-9
+
+
+def test_peak_matches_scipy_welch_and_lombscargle(rng):
+    """References: scipy.signal.welch (averaged) and scipy.signal.lombscargle (no FFT grid)."""
+    t = np.arange(T) * DT
+    f0 = 1.37
+    x = np.sin(2 * np.pi * f0 * t) + 0.3 * rng.standard_normal(T)
+    out = spectral.spectral_maps(x[:, None].astype(np.float32), _plan())
+    fw, pw = scipy.signal.welch(x, fs=1 / DT, nperseg=T // 2)
+    band = (fw >= 0.5) & (fw <= 3)
+    assert abs(out["rate_bpm"][0] / 60 - fw[band][np.argmax(pw[band])]) <= 1 / (T // 2 * DT)
+    grid = np.linspace(0.5, 3.0, 5001)
+    pls = scipy.signal.lombscargle(t, x, 2 * np.pi * grid)
+    assert abs(out["rate_bpm"][0] / 60 - grid[np.argmax(pls)]) <= 0.1 / (T * DT)
+
+
+@pytest.mark.parametrize("offset", np.linspace(-0.5, 0.5, 11))
+def test_refinement_error_below_bound(offset):
+    """CHECKS.md #8 (Quinn 1994; Jacobsen & Kootsookos 2007): Hann + parabola on log magnitude,
+    noise-free sine, error at most 0.02 bin (bin width 1/(N dt), numpy rfftfreq, CHECKS #7)."""
+    bin_hz = 1 / (T * DT)
+    f0 = (31 + offset) * bin_hz
+    t = np.arange(T) * DT
+    x = np.cos(2 * np.pi * f0 * t + 0.3)[:, None]
+    out = spectral.spectral_maps(x, _plan())
+    assert abs(out["rate_bpm"][0] / 60 - f0) <= 0.02 * bin_hz
+    assert out["amplitude"][0] == pytest.approx(1.0, rel=0.02)
+
+
+def test_amplitude_in_input_units(rng):
+    t = np.arange(T) * DT
+    x = 37.0 * np.sin(2 * np.pi * 1.1 * t) + rng.normal(0, 1, T)
+    out = spectral.spectral_maps(x[:, None], _plan())
+    assert out["amplitude"][0] == pytest.approx(37.0, rel=0.03)
+    assert out["period_s"][0] == pytest.approx(1 / 1.1, rel=1e-3)
+
+
+def test_pulse_train_reported_at_fundamental_not_harmonic():
+    """A calcium-like pulse train has strong harmonics; the octave check keeps the fundamental."""
+    from rhythmap.synthetic import calcium_wave
+
+    t = np.arange(T) * DT
+    x = calcium_wave(t * 40 / 60)[:, None]  # 40 bpm, harmonics at 80, 120, 160 inside the band
+    out = spectral.spectral_maps(detrend(x, trend_basis(T, DT, 0.25)), _plan((30, 180)))
+    assert out["rate_bpm"][0] == pytest.approx(40.0, abs=0.3)
+
+
+def test_false_alarm_rate_on_white_noise():
+    """The detection rule's false-positive rate on pure white noise stays at the requested level."""
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal((T, 40000)).astype(np.float32)
+    for alpha in (1e-2, 1e-3):
+        out = spectral.spectral_maps(x, _plan(false_alarm=alpha))
+        rate = out["detected"].mean()
+        assert rate <= 1.3 * alpha + 3 * np.sqrt(alpha / x.shape[1])
+        assert np.all(np.isnan(out["rate_bpm"][out["detected"] == 0]))
+
+
+def test_periodicity_score(rng):
+    t = np.arange(T) * DT
+    sine = np.sin(2 * np.pi * 1.2 * t)[:, None]
+    noise = rng.standard_normal((T, 200))
+    p_sine = spectral.spectral_maps(sine, _plan())["periodicity"]
+    p_noise = spectral.spectral_maps(noise, _plan())["periodicity"]
+    assert p_sine[0] > 0.95
+    assert np.median(p_noise) < 0.1
+    assert np.all((p_noise >= 0) & (p_noise <= 1))
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    (dict(n=400, dt=0.05, rate_range=(30, 600)), "Nyquist"),      # 10 Hz at 20 fps
+    (dict(n=400, dt=0.1, rate_range=(30, 360)), "Nyquist"),       # CHECKS #6: 6 Hz at 10 fps aliases
+    (dict(n=40, dt=0.05, rate_range=(30, 180)), "fewer than"),     # 2 s: one cycle of 30 bpm
+    (dict(n=400, dt=0.05, rate_range=(60.5, 61.0)), "narrower"),
+])
+def test_bad_bands_are_refused(kwargs, match):
+    with pytest.raises(InputError, match=match):
+        _plan(**kwargs)
+
+
+def test_traces_of_wrong_length_are_refused():
+    with pytest.raises(InputError, match="traces must be"):
+        spectral.spectral_maps(np.zeros((10, 3)), _plan())
