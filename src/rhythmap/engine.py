@@ -203,7 +203,9 @@ def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | 
 
 
 def _tile_task(fn, block, y0, x0, **kwargs):
-    return dask.delayed(fn, pure=True, name=f"{TILE_TASK_PREFIX}-{fn.__name__}-{dask.base.tokenize(block, y0, x0, kwargs)}")(block, y0, x0, **kwargs)
+    """A delayed kernel call whose key starts with TILE_TASK_PREFIX, so progress can count it."""
+    key = f"{TILE_TASK_PREFIX}-{fn.__name__}-{dask.base.tokenize(block, y0, x0, kwargs)}"
+    return dask.delayed(fn, pure=True)(block, y0, x0, dask_key_name=key, **kwargs)
 
 
 # ------------------------------------------------------------------ public entry points

@@ -15,7 +15,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, fields
 
 import numpy as np
-from scipy.signal import savgol_filter
 
 from rhythmap._dtypes import as_float
 from rhythmap.errors import InputError
@@ -149,6 +148,20 @@ def _beat_times(time_s, unwrapped):
     return time_s[lo] + frac * (time_s[hi] - time_s[lo])
 
 
+def _window_rate(time_s, unwrapped, length_s):
+    """Mean phase speed (rad/s) over a window of ``length_s`` centred on each sample.
+
+    ``(Theta(b) - Theta(a)) / (b - a)`` with ``Theta`` linearly interpolated: the exact
+    mean of ``dTheta/dt`` over ``[a, b]``. Near the ends the window is shifted to stay
+    inside the record (so the first and last half windows get the edge window's rate).
+    """
+    t0, t1 = time_s[0], time_s[-1]
+    length = np.minimum(length_s, t1 - t0)
+    a = np.clip(time_s - length / 2, t0, t1 - length)
+    b = a + length
+    return (np.interp(b, time_s, unwrapped) - np.interp(a, time_s, unwrapped)) / length
+
+
 def _check_time(time_s, name="time_s"):
     t = as_float(time_s, np.float64)
     if t.ndim != 1 or t.size < 4 or not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
@@ -175,8 +188,8 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
     score : float
         Loop score to store.
     smooth_s : float, optional
-        Length in seconds of the moving average applied to the rate; default
-        one mean period (see Notes). At least 3 samples are used.
+        Length in seconds of the window over which the rate is averaged; by
+        default one local period (see Notes).
     second_loop_ratio, quasi_periodic, window_frames, dim, tau : optional
         Stored as given.
 
@@ -192,14 +205,22 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
 
     Notes
     -----
-    With ``Theta`` the unwrapped phase, the instantaneous rate is
-    ``60 / (2 pi) * dTheta/dt`` (``numpy.gradient`` on the sample times, exact
-    for quadratic phases at interior points) smoothed by a centred moving
-    average (Savitzky-Golay of order 1) over ``smooth_s``, fitted linearly at
-    the ends. One period is the default because circular coordinates follow the
-    loop's geometry, not time, so the phase speed wobbles within each beat; an
-    average over a whole period cancels that wobble and is exact for a rate that
-    drifts linearly. A beat is the first time ``Theta`` reaches ``2 pi k`` for
+    With ``Theta`` the unwrapped phase, the instantaneous rate at ``t`` is the
+    mean phase speed over a window ``[a, b]`` of length ``L`` centred on ``t``:
+
+    .. math:: r(t) = \frac{60}{2\pi} \frac{\Theta(b) - \Theta(a)}{b - a}
+              = \frac{60}{2\pi} \frac{1}{L}\int_a^b \dot\Theta\,dt' \quad [bpm],
+
+    with ``Theta`` linearly interpolated between samples (so uneven sampling is
+    fine), and the window shifted inward at the ends of the record (the first
+    and last half windows get the edge window's rate). By default ``L`` is one
+    *local* period, found in two passes (first over the mean period, then over
+    ``2 pi / r_1(t)``, clipped to 0.5-2 mean periods); ``smooth_s`` fixes ``L``.
+    One period because circular coordinates follow the loop's geometry, not
+    time, so the phase speed wobbles within each beat; the mean over a whole
+    period cancels that wobble, and is exact for a linearly drifting rate.
+    ``smooth_s`` in the result records the mean period (default) or the value given.
+    A beat is the first time ``Theta`` reaches ``2 pi k`` for
     each integer ``k`` after the first sample, by linear interpolation between
     samples (sub-sample). A constant offset of theta shifts every beat equally
     and leaves intervals, CV and RMSSD unchanged.
@@ -208,8 +229,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
     ----------
     .. [1] V. de Silva, D. Morozov and M. Vejdemo-Johansson, Discrete Comput.
        Geom. 45:737-759 (2011).
-    .. [2] A. Savitzky and M. J. E. Golay, Anal. Chem. 36:1627-1639 (1964).
-    .. [3] Task Force of the ESC and NASPE, "Heart rate variability", Circulation
+    .. [2] Task Force of the ESC and NASPE, "Heart rate variability", Circulation
        93:1043-1065 (1996) (RMSSD).
 
     Examples
@@ -236,19 +256,23 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
             "theta_rad does not advance over the record (unwrapped change "
             f"{span:.3g} rad); orient it with rhythmap.topology.orient_with_time first."
         )
-    if smooth_s is None:
-        smooth_s = 2 * np.pi * (t[-1] - t[0]) / span
-    elif not (np.isfinite(smooth_s) and smooth_s > 0):
+    mean_period_s = 2 * np.pi * (t[-1] - t[0]) / span
+    if smooth_s is not None and not (np.isfinite(smooth_s) and smooth_s > 0):
         raise InputError(f"smooth_s must be a positive time in seconds, got {smooth_s!r}.")
-    dt = (t[-1] - t[0]) / (t.size - 1)
-    n_smooth = int(round(smooth_s / dt)) // 2 * 2 + 1
-    n_smooth = max(3, min(n_smooth, t.size if t.size % 2 else t.size - 1))
-    rate = np.gradient(unwrapped, t) * 60.0 / (2 * np.pi)
-    rate = savgol_filter(rate, n_smooth, polyorder=1, mode="interp")
+    if smooth_s is None:
+        # Pass 1 over the mean period, pass 2 over the local period it finds.
+        first = _window_rate(t, unwrapped, np.full(t.size, mean_period_s))
+        local_period = np.clip(2 * np.pi / np.maximum(first, 1e-300),
+                               0.5 * mean_period_s, 2.0 * mean_period_s)
+        rate_rad_s = _window_rate(t, unwrapped, local_period)
+        smooth_used = mean_period_s
+    else:
+        rate_rad_s = _window_rate(t, unwrapped, np.full(t.size, float(smooth_s)))
+        smooth_used = float(smooth_s)
     return RhythmReference(
         time_s=t,
         theta_rad=np.mod(theta, 2 * np.pi),
-        inst_rate_bpm=rate,
+        inst_rate_bpm=rate_rad_s * 60.0 / (2 * np.pi),
         beat_times_s=_beat_times(t, unwrapped),
         diagram=np.zeros((0, 2)) if diagram is None else as_float(diagram, np.float64).reshape(-1, 2),
         score=float(score),
@@ -257,7 +281,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
         window_frames=None if window_frames is None else int(window_frames),
         dim=None if dim is None else int(dim),
         tau=None if tau is None else int(tau),
-        smooth_s=float(smooth_s),
+        smooth_s=float(smooth_used),
     )
 
 

@@ -275,6 +275,8 @@ def _open_tiff(path: Path, channel, plane):
     except Exception as exc:  # tifffile raises several types for broken files
         raise InputError(f"cannot read {str(path)!r} as TIFF: {exc}. Is the file complete?") from None
     with tif:
+        if not tif.series:
+            raise InputError(f"{str(path)!r}: cannot read any image in it as TIFF. Is the file complete?")
         series = tif.series[0]
         axes = series.axes
         file_meta: dict[str, Any] = {}

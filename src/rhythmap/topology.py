@@ -67,20 +67,20 @@ def _check_dist(dist, min_points=3) -> np.ndarray:
             f"dist has {d.shape[0]} points; at least {min_points} are needed. "
             "Use a longer recording or a shorter window."
         )
-    if not np.all(np.isfinite(d)):
+    if not np.isfinite(d).all():
         raise InputError("dist contains NaN or infinite values; all distances must be finite.")
-    scale = max(float(np.abs(d).max()), 1e-300)
-    if d.min() < -1e-12 * scale:
+    smallest, scale = float(d.min()), max(float(d.max()), 1e-300)
+    if smallest < -1e-12 * scale:
         raise InputError(
-            f"dist has negative entries (min {d.min():.3g}); distances must be >= 0. "
+            f"dist has negative entries (min {smallest:.3g}); distances must be >= 0. "
             "Clip rounding negatives with np.clip(dist, 0, None)."
         )
-    if not np.allclose(d, d.T, rtol=0.0, atol=1e-7 * scale):
+    if float(np.abs(d - d.T).max()) > 1e-7 * scale:
         raise InputError(
             "dist is not symmetric; pass a distance matrix with dist[i, j] == dist[j, i] "
             "(e.g. 0.5 * (dist + dist.T))."
         )
-    return np.clip(0.5 * (d + d.T), 0.0, None)
+    return d
 
 
 def _check_coeff(coeff) -> int:
@@ -269,15 +269,21 @@ def h1_persistence(dist, *, n_landmarks=300, coeff=47, cocycles=False, start=0):
     >>> bool(np.isclose(res.diagram[0, 1], np.sqrt(3), atol=1e-6))
     True
     """
-    from ripser import ripser  # imported here: the only module that needs it
-
     d = _check_dist(dist)
     n_landmarks = _check_n_landmarks(n_landmarks)
     coeff = _check_coeff(coeff)
     if not isinstance(start, (int, np.integer)) or not 0 <= start < d.shape[0]:
         raise InputError(f"start must be a point index in [0, {d.shape[0]}), got {start!r}.")
-    idx, cover = _greedy(d, n_landmarks, int(start))
-    sub = np.ascontiguousarray(d[np.ix_(idx, idx)])
+    return _h1(d, n_landmarks, coeff, bool(cocycles), int(start))
+
+
+def _h1(d, n_landmarks, coeff, cocycles, start):
+    """:func:`h1_persistence` on checked arguments."""
+    from ripser import ripser  # imported here: the only module that needs it
+
+    idx, cover = _greedy(d, n_landmarks, start)
+    sub = d[np.ix_(idx, idx)]
+    sub = np.clip(0.5 * (sub + sub.T), 0.0, None)  # exactly symmetric for ripser
     out = ripser(sub, distance_matrix=True, maxdim=1, coeff=coeff, do_cocycles=bool(cocycles))
     dgm = np.asarray(out["dgms"][1], dtype=np.float64).reshape(-1, 2)
     finite = np.isfinite(dgm[:, 1])
@@ -596,8 +602,7 @@ def circular_coordinates(dist, *, n_landmarks=300, coeff=47, rng=None, scale_fra
         )
     if persistence is None:
         start = 0 if rng is None else int(np.random.default_rng(rng).integers(d.shape[0]))
-        persistence = h1_persistence(d, n_landmarks=n_landmarks, coeff=coeff, cocycles=True,
-                                     start=start)
+        persistence = _h1(d, _check_n_landmarks(n_landmarks), _check_coeff(coeff), True, start)
     elif persistence.cocycles is None:
         raise InputError(
             "persistence has no cocycles; compute it with h1_persistence(..., cocycles=True)."

@@ -1,0 +1,93 @@
+"""The rhythmap command, run as a user would: real files, exit codes, no tracebacks."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+from rhythmap import cli, samples
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "rhythmap.cli", *map(str, args)], capture_output=True, text=True,
+                          cwd=cwd, timeout=300)
+
+
+@pytest.fixture(scope="module")
+def sample_tif(tmp_path_factory):
+    return samples.write_samples(tmp_path_factory.mktemp("samples"))[0]
+
+
+def test_analyze_writes_outputs_and_a_summary(tmp_path, sample_tif):
+    out = tmp_path / "out"
+    p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150")
+    assert p.returncode == 0, p.stderr
+    assert "rate (median, IQR)" in p.stdout and "not a diagnostic device" in p.stdout
+    for name in ("maps.ome.zarr", "run.json", "report.png", "regions.csv", "beats.csv"):
+        assert (out / name).exists(), name
+    truth = np.load(sample_tif.parent / "well_sheet_truth.npz")
+    import rhythmap
+
+    res = rhythmap.load_result(out)
+    sheet = truth["regions"] == 1
+    assert np.nanmedian(np.abs(res.rate_bpm[sheet] - truth["rate_bpm"][sheet])) < 0.5
+
+
+def test_options_from_the_shared_table(tmp_path, sample_tif):
+    out = tmp_path / "o2"
+    p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150", "--pooling-radius-px", "0",
+            "--false-alarm", "0.01", "--quiet")
+    assert p.returncode == 0, p.stderr
+    import rhythmap
+
+    params = rhythmap.load_result(out).parameters
+    assert params["pooling_radius_px"] == 0 and params["false_alarm"] == 0.01
+
+
+@pytest.mark.parametrize("args, match", [
+    (["analyze", "/no/such.tif", "-o", "OUT"], "no such stack"),
+    (["analyze", "{sample}", "-o", "OUT", "--rate-range", "20", "900"], "Nyquist"),
+    (["analyze", "{sample}", "-o", "OUT", "--pooling-radius-px", "abc"], "pooling_radius_px"),
+    (["analyze", "{nometa}", "-o", "OUT"], "--frame-interval"),
+    (["analyze", "{sample}", "-o", "{existing}"], "already exists"),
+])
+def test_bad_input_exits_2_without_traceback(tmp_path, sample_tif, args, match):
+    nometa = tmp_path / "nometa.tif"
+    tifffile.imwrite(nometa, np.zeros((20, 8, 8), np.uint16))
+    existing = tmp_path / "existing"
+    existing.mkdir()
+    subs = {"sample": sample_tif, "nometa": nometa, "existing": existing}
+    args = [a.format(**subs).replace("OUT", str(tmp_path / "out")) for a in args]
+    p = run(*args)
+    assert p.returncode == 2
+    assert "Traceback" not in p.stderr
+    assert match in p.stderr
+    assert not (tmp_path / "out").exists()
+
+
+def test_demo_in_a_clean_folder(tmp_path):
+    p = run("demo", "-o", tmp_path / "demo", cwd=tmp_path)
+    assert p.returncode == 0, p.stderr
+    assert "results written to" in p.stdout
+    assert (tmp_path / "demo" / "report.png").exists()
+
+
+def test_convert_then_analyze_gives_the_same_maps(tmp_path, sample_tif):
+    z = tmp_path / "s.ome.zarr"
+    assert cli.main(["convert", str(sample_tif), str(z)]) == 0
+    import rhythmap
+
+    a = rhythmap.open_stack(z)
+    b = rhythmap.open_stack(sample_tif)
+    assert a.data.chunks[0] == (a.n_frames,)
+    assert a.frame_interval_s == pytest.approx(b.frame_interval_s)
+    assert a.pixel_size_um == pytest.approx(b.pixel_size_um, rel=1e-6)
+    np.testing.assert_array_equal(a.data.compute(), b.data.compute())
+    assert cli.main(["convert", str(sample_tif), str(z)]) == 2  # refuses to overwrite

@@ -1,0 +1,119 @@
+"""The engine: lazy tiled passes equal the eager kernels on awkward chunks, progress, cancel, memory plan."""
+
+from __future__ import annotations
+
+import dask.array as da
+import numpy as np
+import pytest
+import zarr
+
+import rhythmap
+from rhythmap import engine, preprocess, spectral
+from rhythmap.errors import CancelledError, InputError
+
+
+def _eager_maps(frames, dt, rate_range, radius):
+    """The kernels applied to the whole stack at once in numpy: the reference for the lazy engine."""
+    t, y, x = frames.shape
+    padded = np.pad(frames.astype(np.float32), ((0, 0), (radius, radius), (radius, radius)), mode="edge")
+    pooled = preprocess.box_pool(padded, radius).reshape(t, y * x)
+    opts = rhythmap.options.defaults()
+    basis = preprocess.trend_basis(t, dt, opts["trend_cutoff_fraction"] * rate_range[0] / 60)
+    plan = spectral.plan_spectrum(t, dt, rate_range, false_alarm=opts["false_alarm"])
+    out = spectral.spectral_maps(preprocess.detrend(pooled, basis), plan)
+    return {k: v.reshape(y, x) for k, v in out.items()}
+
+
+@pytest.mark.parametrize("chunks", [(240, 5, 7), (240, 3, 11), (60, 48, 48), (240, 48, 48)])
+def test_lazy_equals_eager_on_awkward_chunks(well, chunks):
+    frames = well.frames
+    eager = _eager_maps(frames, well.frame_interval_s, (20, 150), 1)
+    stack = rhythmap.open_stack(da.from_array(frames, chunks=chunks), frame_interval_s=well.frame_interval_s)
+    res = rhythmap.analyze(stack, (20, 150), memory_budget_mb=16)
+    for key in ("rate_bpm", "period_s", "amplitude", "periodicity"):
+        got = getattr(res, key)
+        np.testing.assert_array_equal(np.isnan(got), np.isnan(eager[key]), err_msg=key)
+        np.testing.assert_allclose(got, eager[key], rtol=2e-5, atol=1e-6, equal_nan=True, err_msg=key)
+
+
+def test_same_numbers_for_any_chunking_and_tile_size(well):
+    results = []
+    for chunks, budget in [((240, 48, 48), 512), ((240, 7, 5), 16), ((17, 48, 48), 40)]:
+        st = rhythmap.open_stack(da.from_array(well.frames, chunks=chunks), frame_interval_s=0.04)
+        results.append(rhythmap.analyze(st, (20, 150), memory_budget_mb=budget))
+    for r in results[1:]:
+        np.testing.assert_allclose(r.rate_bpm, results[0].rate_bpm, rtol=2e-5, equal_nan=True)
+        np.testing.assert_allclose(r.amplitude, results[0].amplitude, rtol=2e-5, equal_nan=True)
+
+
+def test_tile_plan_follows_the_memory_budget():
+    shape, chunks = (1000, 1024, 1024), ((1000,), (128,) * 8, (128,) * 8)
+    small = engine.plan_tiles(shape, chunks, memory_budget_mb=64, halo=1, n_parallel=2)
+    large = engine.plan_tiles(shape, chunks, memory_budget_mb=2048, halo=1, n_parallel=2)
+    for plan, budget in ((small, 64), (large, 2048)):
+        ty, tx = plan.tile_shape
+        assert ty * tx * 1000 * engine.WORK_BYTES_PER_SAMPLE <= 2 * budget * 2**20 / 2
+    assert small.n_tiles > large.n_tiles
+    assert large.aligned and large.tile_shape[0] % 128 == 0  # whole chunks, no chunk read twice
+
+
+def test_streams_from_zarr_with_many_tiles(tmp_path, well):
+    """A Zarr store analysed in many small tiles (budget far below the stack) gives the in-memory numbers."""
+    p = tmp_path / "s.zarr"
+    z = zarr.create_array(str(p), shape=well.frames.shape, chunks=(240, 16, 16), dtype=well.frames.dtype)
+    z[:] = well.frames
+    z.attrs["frame_interval_s"] = well.frame_interval_s
+    ticks = []
+    res = rhythmap.analyze(rhythmap.open_stack(p), (20, 150), progress=lambda d, n, s: ticks.append((d, n, s)),
+                           memory_budget_mb=16)
+    ref = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04), (20, 150))
+    np.testing.assert_allclose(res.rate_bpm, ref.rate_bpm, rtol=2e-5, equal_nan=True)
+    dones = [d for d, n, s in ticks if s == "maps"]
+    assert dones == sorted(dones) and dones[-1] == ticks[0][1] > 1
+    assert ticks[-1][2] == "done"
+
+
+def test_cancel_stops_the_run(well):
+    calls = []
+
+    def cancel():
+        calls.append(1)
+        return len(calls) >= 2
+
+    st = rhythmap.open_stack(da.from_array(well.frames, chunks=(240, 8, 8)), frame_interval_s=0.04)
+    with pytest.raises(CancelledError):
+        rhythmap.analyze(st, (20, 150), cancel=cancel, memory_budget_mb=16, pooling_radius_px=0)
+
+
+def test_generator_yields_progress_and_returns_the_result(well):
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04)
+    gen = engine.iter_analyze(st, (20, 150))
+    ticks = []
+    try:
+        while True:
+            ticks.append(next(gen))
+    except StopIteration as stop:
+        result = stop.value
+    assert isinstance(result, rhythmap.RhythmResult)
+    assert ticks[0].done == 0 and ticks[-1].stage == "done"
+
+
+def test_maps_are_at_input_size_and_units(well):
+    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    assert res.rate_bpm.shape == well.frames.shape[1:]
+    assert res.rate_bpm.dtype == np.float32
+    np.testing.assert_allclose(res.period_s, 60 / res.rate_bpm, rtol=1e-5, equal_nan=True)
+
+
+@pytest.mark.parametrize("err, kwargs, match", [
+    (InputError, {"rate_range_bpm": (150, 20)}, "low < high"),
+    (InputError, {"rate_range_bpm": "fast"}, "two numbers"),
+    (InputError, {"rate_range_bpm": (20, 900)}, "Nyquist"),
+    (InputError, {"rate_range_bpm": (20, 150), "pooling_radius_px": 99}, "pooling_radius_px"),
+    (InputError, {"rate_range_bpm": (20, 150), "no_such_option": 1}, "unknown option"),
+    (InputError, {"rate_range_bpm": (20, 150), "false_alarm": 2}, "false_alarm"),
+])
+def test_bad_arguments(well, err, kwargs, match):
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04)
+    with pytest.raises(err, match=match):
+        rhythmap.analyze(st, **kwargs)
