@@ -54,10 +54,13 @@ def test_explicit_points_layout_and_pointwise_centring():
 
 
 def test_zero_norm_window_is_at_distance_sqrt2():
-    x = np.r_[np.ones(10), np.cos(np.arange(20))][:, None]
+    # A bright constant stretch: its centred windows are zero up to rounding of G.
+    x = 1000.0 + np.r_[np.zeros(10), np.cos(np.arange(20))][:, None]
     d2 = sliding_window_sqdist(x @ x.T, dim=4, tau=1)
     assert d2[0, 0] == 0.0
     np.testing.assert_allclose(d2[0, 15], 2.0)  # constant window: cos = 0 by convention
+    W = sliding_window_points(x, dim=4, tau=1)
+    np.testing.assert_allclose(d2[10:, 10:], cdist(W[10:], W[10:], "sqeuclidean"), atol=1e-6)
 
 
 @pytest.mark.parametrize("period", [21.0, 30.0, 42.0, 63.5, 100.0, 250.0])

@@ -63,6 +63,8 @@ def test_greedy_landmarks_is_max_min():
     for m in range(1, 10):  # each pick is the farthest point from those before it
         assert np.isclose(d[:, idx[:m]].min(axis=1).max(), d[idx[m], idx[:m]].min())
     assert len(greedy_landmarks(d, 500)) == 80
+    dup = cdist(np.r_[pts[:5], pts[:5]], np.r_[pts[:5], pts[:5]])
+    assert len(greedy_landmarks(dup, 8)) == 5  # duplicates are never picked twice
 
 
 @pytest.mark.parametrize("seed", [0, 1])

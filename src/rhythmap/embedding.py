@@ -103,23 +103,32 @@ def _window_block_sum(gram, dim, tau, n_windows):
 
 
 def _window_inner_products(gram, dim, tau, center):
-    """Inner products ``<W_i, W_j>`` of the (optionally pointwise-centred) windows."""
+    """Inner products ``<W_i, W_j>`` of the (optionally pointwise-centred) windows.
+
+    Also returns the uncentred squared norms ``S(i, i)``, the scale against which
+    the rounding of the centring subtraction is judged.
+    """
     n_windows = gram.shape[0] - (dim - 1) * tau
     inner = _diagonal_window_sum(gram, dim, tau, n_windows)
+    raw_sq_norm = np.diag(inner).copy()
     if center:
         inner -= _window_block_sum(gram, dim, tau, n_windows) / dim
     # Symmetrise: shifted sums of a symmetric G are symmetric up to rounding.
-    return 0.5 * (inner + inner.T)
+    return 0.5 * (inner + inner.T), raw_sq_norm
 
 
-def _normalise_inner(inner):
+#: A centred window whose energy is below this fraction of its uncentred energy
+#: is constant up to rounding (the subtraction loses about dim * eps of it).
+ZERO_NORM_FRACTION = 1e-10
+
+
+def _normalise_inner(inner, raw_sq_norm):
     """Cosine matrix of an inner-product matrix; zero-norm windows get cos = 0."""
-    sq_norm = np.clip(np.diag(inner).copy(), 0.0, None)
-    scale = np.sqrt(sq_norm)
-    # Zero-norm windows (a window of constant frames after centring) have no
-    # direction: treat them as orthogonal to every window, distance sqrt(2).
-    tiny = scale <= np.finfo(np.float64).eps * max(float(scale.max(initial=0.0)), 1.0) * 1e3
-    inv = np.where(tiny, 0.0, 1.0 / np.where(tiny, 1.0, scale))
+    sq_norm = np.diag(inner).copy()
+    # Zero-norm windows (constant frames after centring, or all-zero frames) have
+    # no direction: treat them as orthogonal to every window, distance sqrt(2).
+    tiny = (sq_norm <= ZERO_NORM_FRACTION * raw_sq_norm) | (sq_norm <= 0.0)
+    inv = np.where(tiny, 0.0, 1.0 / np.sqrt(np.where(tiny, 1.0, sq_norm)))
     cos = inner * inv[:, None] * inv[None, :]
     np.fill_diagonal(cos, np.where(tiny, 0.0, 1.0))
     return np.clip(cos, -1.0, 1.0), tiny
@@ -169,8 +178,9 @@ def sliding_window_sqdist(gram, *, dim, tau, center=True, normalize=True):
     ``A G A^T`` is formed by shifted row sums then shifted column sums.
     Then ``D^2 = C(i,i) + C(j,j) - 2 C(i,j)``, or after unit normalisation
     ``D^2 = 2 - 2 C(i,j) / sqrt(C(i,i) C(j,j))``. A window whose centred norm is
-    zero (constant frames) has no direction; it is given cosine 0 with every
-    other window, i.e. ``D^2 = 2``. The cost is ``O(dim * N * T)``, independent of P.
+    zero (constant frames: ``C(i,i) <= 1e-10 S(i,i)``, the rounding level of the
+    centring) has no direction; it is given cosine 0 with every other window,
+    i.e. ``D^2 = 2``. The cost is ``O(dim * N * T)``, independent of P.
     Rounding in ``G`` limits the relative accuracy of small distances between
     windows far from the origin; centre or detrend the pixels before forming ``G``.
 
@@ -195,9 +205,9 @@ def sliding_window_sqdist(gram, *, dim, tau, center=True, normalize=True):
     """
     g = _check_gram(gram)
     _check_window(g.shape[0], dim, tau)
-    inner = _window_inner_products(g, int(dim), int(tau), bool(center))
+    inner, raw_sq_norm = _window_inner_products(g, int(dim), int(tau), bool(center))
     if normalize:
-        cos, _ = _normalise_inner(inner)
+        cos, _ = _normalise_inner(inner, raw_sq_norm)
         sqdist = 2.0 - 2.0 * cos
     else:
         diag = np.diag(inner)
@@ -369,9 +379,9 @@ def window_for_period(period_frames, *, dim=None, max_dim=21, min_dim=3,
 # ------------------------------------------------------------------ PCA and modes
 def _cloud_spectrum(gram, dim, tau, center, normalize):
     """Eigenpairs (descending) of the double-centred window inner-product matrix."""
-    inner = _window_inner_products(gram, dim, tau, center)
+    inner, raw_sq_norm = _window_inner_products(gram, dim, tau, center)
     if normalize:
-        inner, _ = _normalise_inner(inner)
+        inner, _ = _normalise_inner(inner, raw_sq_norm)
     n = inner.shape[0]
     # Double centring subtracts the mean window of the cloud (ordinary PCA).
     row_mean = inner.mean(axis=0)

@@ -27,7 +27,8 @@ import dask
 import dask.array as da
 import numpy as np
 
-from . import preprocess, spectral
+from . import phase as phase_mod
+from . import preprocess, regions as regions_mod, rhythm, spectral
 from ._version import __version__
 from .errors import CancelledError, InputError
 from .options import validate_options, validate_rate_range
@@ -165,6 +166,26 @@ def maps_tile_kernel(block, y0, x0, *, halo, basis, plan, gram_bin):
 PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")
 
 
+def phase_tile_kernel(block, y0, x0, *, halo, basis, labels, lockin_bases, dominant):
+    """Pass 2 on one tile: lock-in phase and coherence of every pixel against its region's reference.
+
+    Pixels outside every region get a coherence against the dominant
+    (largest) region's reference, and no phase.
+    """
+    traces, (ty, tx) = _pooled_detrended(block, halo, basis)
+    lab = labels.ravel()
+    phase = np.full(ty * tx, np.nan, np.float32)
+    coh = np.full(ty * tx, np.nan, np.float32)
+    for label in np.unique(lab).tolist():
+        sel = lab == label
+        ref_label = label if label in lockin_bases else dominant
+        ph, c, _ = phase_mod.lockin(traces[:, sel], lockin_bases[ref_label])
+        coh[sel] = c
+        if label in lockin_bases:
+            phase[sel] = ph
+    return {"y0": y0, "x0": x0, "phase": phase.reshape(ty, tx), "coherence": coh.reshape(ty, tx)}
+
+
 # ------------------------------------------------------------------ running graphs
 def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | None):
     """Compute per-tile delayed results in one graph, ticking ``on_tile`` per finished tile."""
@@ -264,14 +285,82 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         ty, tx = r["maps"].shape[1:]
         maps[:, r["y0"]:r["y0"] + ty, r["x0"]:r["x0"] + tx] = r["maps"]
     m = dict(zip(PASS1_KEYS, maps))
-    nan_map = np.full((y, x), np.nan, np.float32)
     detected = m["detected"] > 0
+    warn: list[str] = []
+    labels = regions_mod.segment(m["rate_bpm"], detected, bin_bpm=60.0 * plan.bin_hz,
+                                 min_area_px=opts["min_area_px"])
+    coherence = np.full((y, x), np.nan, np.float32)
+    phase_rad = np.full((y, x), np.nan, np.float32)
+    delay_s = np.full((y, x), np.nan, np.float32)
+    references: dict[int, Any] = {}
+    if not opts["maps_only"] and labels.max() > 0:
+        # ---------------------------------------------------------- references
+        t_ref = time.perf_counter()
+        region_ids = [int(v) for v in range(1, labels.max() + 1)]
+        yield Progress(0, len(region_ids), "references")
+        traces, bin_region = _gather_bins(results, labels, gram_bin)
+        for n_done, label in enumerate(region_ids, start=1):
+            cols = bin_region == label
+            rate = float(np.nanmedian(m["rate_bpm"][labels == label]))
+            if cols.sum() < 2:
+                warn.append(f"region {label}: too few pixels for a rhythm reference")
+                continue
+            try:
+                references[label] = rhythm.region_reference(
+                    traces[:, cols], stack.frame_interval_s, rate, n_landmarks=opts["n_landmarks"],
+                    max_frames=opts["max_frames_topology"])
+            except InputError as exc:
+                warn.append(f"region {label}: no rhythm reference ({exc})")
+            yield Progress(n_done, len(region_ids), "references")
+            if cancel is not None and cancel():
+                raise CancelledError("the analysis was cancelled")
+        timings["references_s"] = time.perf_counter() - t_ref
+
+    if references:
+        # ---------------------------------------------------------- pass 2: lock-in phase
+        t_phase = time.perf_counter()
+        frame_times = np.arange(t) * stack.frame_interval_s
+        cycles = max(ref.rate_mean_bpm for ref in references.values()) / 60.0 * stack.duration_s
+        n_segments = int(np.clip(cycles // 2, 4, 16))
+        bases = {label: phase_mod.lockin_basis(phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
+                                               n_segments)
+                 for label, ref in references.items()}
+        dominant = max(references, key=lambda lab: int((labels == lab).sum()))
+        done[0] = 0
+        ticks.clear()
+
+        def on_tile2():
+            done[0] += 1
+            ticks.append(Progress(done[0], total, "phase"))
+
+        yield Progress(0, total, "phase")
+        tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo, basis=basis,
+                             labels=labels[y0:y0 + ty, x0:x0 + tx], lockin_bases=bases, dominant=dominant)
+                  for b, y0, x0, ty, tx in _tile_arrays(stack.data, tiles_plan)]
+        results2 = yield from _drain(tasks2, on_tile2, cancel, ticks)
+        for r in results2:
+            ty, tx = r["phase"].shape
+            sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
+            phase_rad[sl] = r["phase"]
+            coherence[sl] = r["coherence"]
+        for label, ref in references.items():
+            inside = labels == label
+            steady = inside & (coherence >= COHERENT)
+            phase0 = phase_mod.earliest_phase(phase_rad[steady if steady.any() else inside])
+            period = 60.0 / ref.rate_mean_bpm
+            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], period, phase0)
+        timings["phase_pass_s"] = time.perf_counter() - t_phase
+
+    table = regions_mod.region_table(labels, {"rate_bpm": m["rate_bpm"], "coherence": coherence,
+                                              "amplitude": m["amplitude"]}, references,
+                                     pixel_size_um=stack.pixel_size_um)
     result = RhythmResult(
         rate_bpm=m["rate_bpm"], period_s=m["period_s"], amplitude=m["amplitude"],
-        periodicity=m["periodicity"], coherence=nan_map.copy(), phase_rad=nan_map.copy(),
-        delay_s=nan_map.copy(), regions=detected.astype(np.int32),
+        periodicity=m["periodicity"], coherence=coherence, phase_rad=phase_rad,
+        delay_s=delay_s, regions=labels, region_table=table, references=references,
         frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
-        parameters={"rate_range_bpm": list(lo_hi), **opts},
+        parameters={"rate_range_bpm": list(lo_hi), **opts, "warnings": warn,
+                    "gram_bin_px": gram_bin, "tile_shape_px": list(tiles_plan.tile_shape)},
         input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
         timings={**timings, "total_s": time.perf_counter() - t_start},
         extra_maps={"peak_score": m["peak_score"]},
@@ -279,6 +368,29 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     )
     yield Progress(total, total, "done")
     return result
+
+
+#: Pixels at least this coherent with their reference define the earliest phase of a region.
+COHERENT = 0.5
+
+
+def _gather_bins(results, labels, gram_bin):
+    """Mean trace of every Gram bin over all tiles, and the region each bin belongs to."""
+    sums: dict[int, np.ndarray] = {}
+    counts: dict[int, int] = {}
+    for r in results:
+        for i, bid in enumerate(r["bins"].tolist()):
+            if bid in sums:
+                sums[bid] += r["bin_sums"][:, i]
+                counts[bid] += int(r["bin_counts"][i])
+            else:
+                sums[bid] = r["bin_sums"][:, i].copy()
+                counts[bid] = int(r["bin_counts"][i])
+    ids = np.array(sorted(sums), np.int64)
+    if ids.size == 0:
+        return np.zeros((0, 0), np.float32), np.zeros(0, np.int32)
+    traces = np.stack([sums[b] / counts[b] for b in ids.tolist()], axis=1)
+    return traces, regions_mod.bin_labels(labels, ids, gram_bin)
 
 
 def _drain(tasks, on_tile, cancel, ticks):

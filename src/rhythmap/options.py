@@ -59,6 +59,14 @@ OPTIONS: tuple[Option, ...] = (
            "Longest series of windows given to persistence; longer recordings are decimated and the "
            "phase is extended to every frame afterwards.",
            lambda v: 100 <= v <= 20000, "an integer from 100 to 20000"),
+    Option("min_area_px", 25, int,
+           "Smallest beating region kept, in pixels; smaller groups of rhythmic pixels (isolated false "
+           "alarms, debris) are dropped.",
+           lambda v: 1 <= v <= 10**8, "an integer >= 1"),
+    Option("maps_only", False, bool,
+           "Compute only the spectral maps (rate, period, amplitude, periodicity) in one read of the stack; "
+           "skip regions' rhythm references and the per-pixel phase pass.",
+           None, "true or false"),
     Option("tile_loop_map", False, bool,
            "Also compute a tile-level loop-score map (16x16 pixel tiles) in worker processes.",
            None, "true or false"),

@@ -127,8 +127,12 @@ def _greedy(dist, n, start):
     idx[0] = start
     nearest = dist[start].copy()
     for m in range(1, n):
-        idx[m] = int(np.argmax(nearest))
-        np.minimum(nearest, dist[idx[m]], out=nearest)
+        far = int(np.argmax(nearest))
+        if nearest[far] <= 0.0:  # every point coincides with a landmark: stop early
+            idx = idx[:m]
+            break
+        idx[m] = far
+        np.minimum(nearest, dist[far], out=nearest)
     return idx, float(nearest.max())
 
 
@@ -146,8 +150,10 @@ def greedy_landmarks(dist, n, *, start=0):
 
     Returns
     -------
-    idx : (min(n, N),) ndarray of intp
-        Landmark indices into ``dist``, in the order they were picked.
+    idx : (m,) ndarray of intp
+        Landmark indices into ``dist``, in the order they were picked;
+        ``m = min(n, N)``, or fewer if all points are already at distance 0
+        from a landmark (duplicate points are never picked twice).
 
     Raises
     ------
@@ -222,9 +228,9 @@ def h1_persistence(dist, *, n_landmarks=300, coeff=47, cocycles=False, start=0):
     dist : (N, N) array_like
         Symmetric distance matrix (distances, not squared distances).
     n_landmarks : int, optional
-        Number of farthest-point landmarks (default 300; all points if ``N`` is
-        smaller). Measured cost on 2 cores: about 0.1 s at 200, 0.3 s at 300,
-        0.7 s at 400 landmarks for a loop.
+        Number of farthest-point landmarks (default 300; all distinct points if
+        ``N`` is smaller). Measured on these 2-core machines for a noisy loop of
+        2376 windows: about 0.2 s at 200, 0.6 s at 300, 1.4 s at 400 landmarks.
     coeff : int, optional
         Odd prime ``p`` of the coefficient field Z_p (default 47).
     cocycles : bool, optional
@@ -524,7 +530,8 @@ def circular_coordinates(dist, *, n_landmarks=300, coeff=47, rng=None, scale_fra
         (default True; see Notes). False gives de Silva et al.'s unweighted problem.
     persistence : H1Persistence, optional
         A result of :func:`h1_persistence` with cocycles on the same ``dist``,
-        to avoid computing it twice.
+        to avoid computing it twice; ``n_landmarks``, ``coeff`` and ``rng`` are
+        then not used.
 
     Returns
     -------
@@ -609,6 +616,11 @@ def circular_coordinates(dist, *, n_landmarks=300, coeff=47, rng=None, scale_fra
         )
     else:
         _check_coeff(persistence.coeff)
+        if persistence.landmarks.size and persistence.landmarks.max() >= d.shape[0]:
+            raise InputError(
+                f"persistence refers to landmark {persistence.landmarks.max()} but dist has "
+                f"only {d.shape[0]} points; pass the h1_persistence result of this dist."
+            )
     if len(persistence.diagram) == 0:
         raise InputError(
             "the point cloud has no H1 class (no loop), so there is no circular coordinate. "
