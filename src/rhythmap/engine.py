@@ -32,6 +32,7 @@ from . import preprocess, regions as regions_mod, rhythm, spectral
 from ._version import __version__
 from .errors import CancelledError, InputError
 from .options import validate_options, validate_rate_range
+from .reference import reference_from_theta
 from .result import MAP_NAMES, RhythmResult
 from .stack import Stack, open_stack
 
@@ -321,7 +322,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         t_phase = time.perf_counter()
         frame_times = np.arange(t) * stack.frame_interval_s
         cycles = max(ref.rate_mean_bpm for ref in references.values()) / 60.0 * stack.duration_s
-        n_segments = int(np.clip(cycles // 2, 4, 16))
+        n_segments = int(np.clip(cycles // 1, 4, 32))  # about one cycle per segment
         bases = {label: phase_mod.lockin_basis(phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
                                                n_segments)
                  for label, ref in references.items()}
@@ -343,12 +344,20 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
             phase_rad[sl] = r["phase"]
             coherence[sl] = r["coherence"]
-        for label, ref in references.items():
+        for label, ref in list(references.items()):
             inside = labels == label
             steady = inside & (coherence >= COHERENT)
             phase0 = phase_mod.earliest_phase(phase_rad[steady if steady.any() else inside])
+            # Count phase from the region's earliest pixels: its lag becomes 0, and a
+            # beat is the moment the rhythm's fundamental peaks there.
+            phase_rad[inside] = np.mod(phase_rad[inside] - phase0, 2 * np.pi)
             period = 60.0 / ref.rate_mean_bpm
-            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], period, phase0)
+            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], period, 0.0)
+            theta = phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times) - phase0
+            references[label] = reference_from_theta(
+                frame_times, np.mod(theta, 2 * np.pi), diagram=ref.diagram, score=ref.score,
+                second_loop_ratio=ref.second_loop_ratio, quasi_periodic=ref.quasi_periodic,
+                window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau)
         timings["phase_pass_s"] = time.perf_counter() - t_phase
 
     table = regions_mod.region_table(labels, {"rate_bpm": m["rate_bpm"], "coherence": coherence,

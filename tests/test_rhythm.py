@@ -1,0 +1,130 @@
+"""The rhythm reference and per-pixel phase inside analyze(): drifting rates, waves, caps, decimation.
+
+Truth is set by construction in rhythmap.synthetic. A beat is counted at the
+moment the rhythm's fundamental peaks at the region's earliest pixels, so the
+truth's beat times are shifted by the waveform's fundamental phase.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import rhythmap
+from rhythmap import synthetic
+
+
+def _fundamental_offset_cycles(waveform):
+    p = np.arange(4096) / 4096
+    c1 = np.sum(synthetic.WAVEFORMS[waveform](p) * np.exp(-2j * np.pi * p))
+    return np.mod(-np.angle(c1) / (2 * np.pi), 1.0)
+
+
+def _match(est, truth):
+    d = est[:, None] - truth[None, :]
+    return d[np.arange(est.size), np.abs(d).argmin(axis=1)]
+
+
+@pytest.fixture(scope="module")
+def ramp():
+    """A sheet whose rate ramps from 0.8 to 1.2 times 90 bpm over the recording (+-20 %)."""
+    s = synthetic.well_scene((500, 40, 40), frame_interval_s=0.03, pixel_size_um=4.0, rate_bpm=90.0,
+                             rate_ramp=0.4, speed_um_s=1e9, pacemaker=(20, 20), cluster_radius_px=0,
+                             faint_patch=False, debris=0, waveform="sine", noise_sd=20, rng=4)
+    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (40, 200))
+    return s, res
+
+
+def test_drifting_rate_followed_by_the_reference(ramp):
+    s, res = ramp
+    ref = res.references[1]
+    dt = s.frame_interval_s
+    cycles = s.truth["phase_cycles"][1]
+    t = np.arange(cycles.size) * dt
+    true_rate = np.gradient(cycles, t) * 60
+    est_rate = np.interp(t, ref.time_s, ref.inst_rate_bpm)
+    inner = (t > 1.0) & (t < t[-1] - 1.0)
+    mae = np.mean(np.abs(est_rate[inner] - true_rate[inner]))
+    assert mae <= 2.0
+    # beats: the truth's cycle starts, shifted to the fundamental's peak (pacemaker delay is 0)
+    off = _fundamental_offset_cycles("sine")
+    k = np.arange(np.ceil(cycles[0] - off), np.floor(cycles[-1] - off) + 1) + off
+    truth_beats = np.interp(k, cycles, t)
+    err = _match(np.asarray(ref.beat_times_s), truth_beats)
+    assert abs(len(ref.beat_times_s) - len(truth_beats)) <= 1
+    assert np.max(np.abs(err)) <= 1.5 * dt
+    # The fixed-frequency estimate (one rate for the whole record) cannot follow the ramp:
+    f_fixed = np.nanmedian(res.rate_bpm[s.truth["regions"] == 1]) / 60
+    fixed_beats = truth_beats[0] + np.arange(truth_beats.size) / f_fixed
+    fixed_err = fixed_beats - truth_beats
+    assert np.max(np.abs(fixed_err)) > 10 * dt
+    assert np.mean(np.abs(np.full_like(true_rate, f_fixed * 60)[inner] - true_rate[inner])) > 5.0
+
+
+def test_plane_wave_activation_delay_and_coherence():
+    """Circular RMS error of the activation delay <= 2 % of the period (DESIGN.md target)."""
+    s = synthetic.plane_wave_scene((300, 48, 48), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
+                                   speed_um_s=6000.0, direction_deg=30.0, noise_sd=20.0, rng=2)
+    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
+    period = 60 / 90.0
+    assert res.regions.max() == 1
+    err = np.angle(np.exp(2j * np.pi * (res.delay_s - s.truth["delay_s"]) / period)) / (2 * np.pi)
+    rms = np.sqrt(np.nanmean(err ** 2))
+    assert rms <= 0.02
+    assert np.isfinite(res.delay_s).mean() > 0.95
+    ref_period = 60 / res.references[1].rate_mean_bpm  # delays lie in [0, the region's period)
+    d = res.delay_s[np.isfinite(res.delay_s)]
+    assert np.all((d >= 0) & (d < ref_period))
+    assert np.nanmedian(res.coherence) > 0.9
+
+
+def test_coherence_high_on_tissue_low_off_it(well):
+    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    on = well.truth["regions"] > 0
+    far = ~np.asarray(__import__("scipy.ndimage", fromlist=["x"]).binary_dilation(on, iterations=3))
+    assert np.nanmedian(res.coherence[on]) > 0.9
+    assert np.nanmedian(res.coherence[far]) < 0.5
+    assert np.all(np.isnan(res.phase_rad[res.regions == 0]))
+    ok = np.isfinite(res.phase_rad)
+    assert np.all((res.phase_rad[ok] >= 0) & (res.phase_rad[ok] < 2 * np.pi))
+
+
+def test_pixel_cap_of_the_gram_does_not_change_the_rhythm(well):
+    """DESIGN.md cost note: binning the Gram pixels under a cap keeps persistence and theta(t)."""
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    full = rhythmap.analyze(st, (20, 150), gram_max_pixels=10**6)
+    capped = rhythmap.analyze(st, (20, 150), gram_max_pixels=150)
+    assert capped.parameters["gram_bin_px"] > 1 == full.parameters["gram_bin_px"]
+    a, b = full.references[1], capped.references[1]
+    assert b.score == pytest.approx(a.score, abs=0.05)
+    assert np.abs(np.mean(np.exp(1j * (a.theta_rad - b.theta_rad)))) > 0.99
+    np.testing.assert_allclose(b.beat_times_s, a.beat_times_s, atol=1.5 * 0.04)
+
+
+def test_decimated_topology_for_long_records_gives_the_same_beats(well):
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    full = rhythmap.analyze(st, (20, 150))
+    dec = rhythmap.analyze(st, (20, 150), max_frames_topology=100)
+    a, b = full.references[1], dec.references[1]
+    assert len(a.beat_times_s) == len(b.beat_times_s)
+    np.testing.assert_allclose(b.beat_times_s, a.beat_times_s, atol=1.5 * 0.04)
+    assert a.rate_mean_bpm == pytest.approx(72.0, abs=0.5)
+
+
+def test_references_saved_and_loaded(tmp_path, well):
+    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    back = rhythmap.load_result(res.save(tmp_path / "r"))
+    assert set(back.references) == set(res.references)
+    np.testing.assert_allclose(back.references[1].beat_times_s, res.references[1].beat_times_s)
+    np.testing.assert_allclose(back.references[1].diagram, res.references[1].diagram)
+    import pandas as pd
+
+    beats = pd.read_csv(tmp_path / "r" / "beats.csv")
+    assert list(beats.columns) == ["region", "beat", "time_s", "interval_s"]
+    assert (beats.region == 1).sum() == len(res.references[1].beat_times_s)
+
+
+def test_maps_only_skips_the_second_pass(well):
+    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04), (20, 150), maps_only=True)
+    assert res.references == {} and np.all(np.isnan(res.phase_rad))
+    assert "phase_pass_s" not in res.timings and np.isfinite(res.rate_bpm).any()
