@@ -28,7 +28,7 @@ import dask.array as da
 import numpy as np
 
 from . import phase as phase_mod
-from . import preprocess, regions as regions_mod, rhythm, spectral
+from . import preprocess, propagation, regions as regions_mod, rhythm, spectral
 from ._version import __version__
 from .errors import CancelledError, InputError
 from .options import validate_options, validate_rate_range
@@ -321,11 +321,10 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         # ---------------------------------------------------------- pass 2: lock-in phase
         t_phase = time.perf_counter()
         frame_times = np.arange(t) * stack.frame_interval_s
-        cycles = max(ref.rate_mean_bpm for ref in references.values()) / 60.0 * stack.duration_s
-        n_segments = int(np.clip(cycles // 1, 4, 32))  # about one cycle per segment
-        bases = {label: phase_mod.lockin_basis(phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
-                                               n_segments)
-                 for label, ref in references.items()}
+        thetas = {label: phase_mod.smooth_over_period(
+            phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
+            60.0 / ref.rate_mean_bpm / stack.frame_interval_s) for label, ref in references.items()}
+        bases = {label: phase_mod.lockin_basis(th) for label, th in thetas.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
         done[0] = 0
         ticks.clear()
@@ -351,18 +350,25 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             # Count phase from the region's earliest pixels: its lag becomes 0, and a
             # beat is the moment the rhythm's fundamental peaks there.
             phase_rad[inside] = np.mod(phase_rad[inside] - phase0, 2 * np.pi)
-            period = 60.0 / ref.rate_mean_bpm
-            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], period, 0.0)
-            theta = phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times) - phase0
-            references[label] = reference_from_theta(
+            theta = thetas[label] - phase0
+            references[label] = ref = reference_from_theta(
                 frame_times, np.mod(theta, 2 * np.pi), diagram=ref.diagram, score=ref.score,
                 second_loop_ratio=ref.second_loop_ratio, quasi_periodic=ref.quasi_periodic,
                 window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau)
+            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], region_period_s(ref), 0.0)
         timings["phase_pass_s"] = time.perf_counter() - t_phase
 
+    extra = {"peak_score": m["peak_score"]}
+    prop: dict = {}
+    if references:
+        periods = {label: region_period_s(ref) for label, ref in references.items()}
+        prop, vfield = propagation.region_propagation(delay_s, labels, periods, stack.pixel_size_um,
+                                                      stack.frame_interval_s)
+        extra["velocity_y_um_s"] = vfield[..., 0].astype(np.float32)
+        extra["velocity_x_um_s"] = vfield[..., 1].astype(np.float32)
     table = regions_mod.region_table(labels, {"rate_bpm": m["rate_bpm"], "coherence": coherence,
                                               "amplitude": m["amplitude"]}, references,
-                                     pixel_size_um=stack.pixel_size_um)
+                                     pixel_size_um=stack.pixel_size_um, propagation=prop)
     result = RhythmResult(
         rate_bpm=m["rate_bpm"], period_s=m["period_s"], amplitude=m["amplitude"],
         periodicity=m["periodicity"], coherence=coherence, phase_rad=phase_rad,
@@ -372,11 +378,18 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
                     "gram_bin_px": gram_bin, "tile_shape_px": list(tiles_plan.tile_shape)},
         input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
         timings={**timings, "total_s": time.perf_counter() - t_start},
-        extra_maps={"peak_score": m["peak_score"]},
+        extra_maps=extra,
         version=__version__,
     )
     yield Progress(total, total, "done")
     return result
+
+
+def region_period_s(ref) -> float:
+    """A region's mean period: the mean beat interval (the span of whole beats over their count),
+    or 60 / mean rate when there are fewer than two intervals."""
+    iv = ref.beat_intervals_s
+    return float(iv.mean()) if iv.size >= 2 else 60.0 / ref.rate_mean_bpm
 
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.

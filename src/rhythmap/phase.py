@@ -121,20 +121,73 @@ def theta_on_frames(time_s, theta_rad, frame_times_s) -> np.ndarray:
     return out
 
 
-def lockin_basis(theta_frames, n_segments: int) -> np.ndarray:
-    """(2 * n_segments, T) real matrix: cos and sin of theta on each of n equal time segments.
+def smooth_over_period(theta_unwrapped, period_frames: float) -> np.ndarray:
+    """Moving mean of an unwrapped phase over one period.
 
-    Multiplying it by (T, n) traces gives, per segment, the real and minus the
-    imaginary part of sum x(t) e^{-i theta(t)} in one matrix product.
+    The circular coordinate of a loop advances unevenly within each cycle (it
+    follows the geometry of the loop, not the clock). A mean over exactly one
+    period removes that periodic wobble and its harmonics while keeping a
+    linear or slowly drifting phase; it is what makes per-pixel lags
+    proportional to activation delays. The ends are extended by one period
+    (the first and last period shifted by their own advance) before averaging.
+
+    Examples
+    --------
+    >>> n = np.arange(200.0)
+    >>> th = 2 * np.pi * n / 20 + 0.3 * np.sin(2 * np.pi * n / 20)
+    >>> bool(np.allclose(smooth_over_period(th, 20.0), 2 * np.pi * n / 20, atol=1e-9))
+    True
+    """
+    u = np.asarray(theta_unwrapped, float)
+    w = int(round(period_frames))
+    if w < 2 or u.size < 2 * w:
+        return u.copy()
+    # One period before the start looks like the first period shifted back by
+    # its own advance (exact for a periodic wobble on a linear phase); same at the end.
+    ext = np.concatenate([u[:w] - (u[w] - u[0]), u, u[-w:] + (u[-1] - u[-1 - w])])
+    # weights of a mean over exactly `period_frames` samples (fractional ends)
+    frac = period_frames - (w - 1)
+    ker = np.ones(w + 1)
+    ker[0] = ker[-1] = frac / 2 if w + 1 > 2 else 0.5
+    ker /= ker.sum()
+    sm = np.convolve(ext, ker, mode="same")
+    return sm[w:w + u.size]
+
+
+def lockin_basis(theta_frames, max_segments: int = 32) -> np.ndarray:
+    """Real (2 + 2K, T) matrix whose product with (T, n) traces gives the lock-in sums.
+
+    Rows 0-1: cos and sin of theta weighted by a Hann taper over the whole
+    record (the phase estimate). Rows 2k+2, 2k+3: cos and sin of theta on the
+    k-th of K segments (the coherence estimate). Segments are made of whole
+    cycles of theta, so the double-frequency term of cos(theta - phi) e^{-i theta}
+    cancels within each; the taper does the same for the whole record. Without
+    that, the leak would bend the lag by up to 1/(2 pi cycles) and compress
+    delay maps by a few per cent.
+
+    Parameters
+    ----------
+    theta_frames : (T,) array_like
+        Unwrapped reference phase at every frame, increasing.
+    max_segments : int
+        At most this many segments (cycles are grouped when there are more).
     """
     th = np.asarray(theta_frames, float)
     t = th.size
-    edges = np.linspace(0, t, n_segments + 1).round().astype(int)
-    basis = np.zeros((2 * n_segments, t), np.float32)
-    for k in range(n_segments):
-        sl = slice(edges[k], edges[k + 1])
-        basis[2 * k, sl] = np.cos(th[sl])
-        basis[2 * k + 1, sl] = np.sin(th[sl])
+    taper = 0.5 - 0.5 * np.cos(2 * np.pi * (np.arange(t) + 0.5) / t)
+    turns = np.floor((th - th[0]) / TWO_PI)
+    n_cycles = int(turns[-1])
+    group = max(1, int(np.ceil(n_cycles / max_segments)))
+    seg = turns // group
+    last = n_cycles // group  # a trailing partial group is left out
+    n_seg = max(1, int(last))
+    basis = np.zeros((2 + 2 * n_seg, t), np.float32)
+    basis[0] = taper * np.cos(th)
+    basis[1] = taper * np.sin(th)
+    for k in range(n_seg):
+        sel = seg == k
+        basis[2 + 2 * k, sel] = np.cos(th[sel])
+        basis[3 + 2 * k, sel] = np.sin(th[sel])
     return basis
 
 
@@ -145,7 +198,7 @@ def lockin(traces, basis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     ----------
     traces : (T, n) ndarray
         Detrended traces (integers become float32).
-    basis : (2K, T) ndarray
+    basis : (2 + 2K, T) ndarray
         From :func:`lockin_basis` for the reference's phase on the frames.
 
     Returns
@@ -154,36 +207,37 @@ def lockin(traces, basis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         Lag of the trace behind the reference: x(t) ~ A cos(theta(t) - phase).
     coherence : (n,) float32 in [0, 1]
         Resultant length of the K segment phases: 1 when the lag is the same in
-        every segment, about 1/sqrt(K) for noise.
+        every segment, about sqrt(pi / 4K) for noise.
     amplitude : (n,) float32
-        A estimated from the whole-record projection: 2 |sum x e^{-i theta}| / T.
+        A estimated from the tapered whole-record projection: 2 |z| / sum(taper).
 
     Notes
     -----
-    For x = A cos(theta - phi): sum x e^{-i theta} ~ (T A / 2) e^{-i phi}, so
-    phi = -arg(z). Per segment k the same gives z_k; coherence is
+    For x = A cos(theta - phi): sum w x e^{-i theta} ~ (A / 2) sum(w) e^{-i phi},
+    so phi = -arg(z). Per segment k the same gives z_k; coherence is
     |sum_k z_k / |z_k|| / K (Mardia & Jupp 2000).
 
     Examples
     --------
     >>> th = 2 * np.pi * 1.3 * np.arange(300) * 0.05
     >>> x = np.cos(th - 1.0)[:, None]
-    >>> ph, coh, amp = lockin(x, lockin_basis(th, 6))
-    >>> round(float(ph[0]), 3), bool(coh[0] > 0.99)
-    (1.0, True)
+    >>> ph, coh, amp = lockin(x, lockin_basis(th))
+    >>> round(float(ph[0]), 4), round(float(coh[0]), 3), round(float(amp[0]), 3)
+    (1.0, 1.0, 1.0)
     """
     x = as_float(traces)
     b = as_float(basis)
     if b.shape[1] != x.shape[0]:
         raise InputError(f"lock-in basis has {b.shape[1]} frames but traces have {x.shape[0]}.")
-    proj = b @ x  # (2K, n)
-    re, im = proj[0::2], -proj[1::2]
-    z_re, z_im = re.sum(axis=0), im.sum(axis=0)
+    proj = b @ x  # (2 + 2K, n)
+    z_re, z_im = proj[0], -proj[1]
+    re, im = proj[2::2], -proj[3::2]
     phase = np.mod(-np.arctan2(z_im, z_re), TWO_PI).astype(np.float32)
     mag = np.hypot(re, im)
     safe = np.where(mag > 0, mag, 1.0)
     coherence = np.hypot((re / safe).sum(axis=0), (im / safe).sum(axis=0)) / re.shape[0]
-    amplitude = 2.0 * np.hypot(z_re, z_im) / x.shape[0]
+    taper_sum = float(np.hypot(b[0], b[1]).sum())
+    amplitude = 2.0 * np.hypot(z_re, z_im) / taper_sum
     return phase, np.clip(coherence, 0, 1).astype(np.float32), amplitude.astype(np.float32)
 
 
