@@ -20,7 +20,7 @@ def _eager_maps(frames, dt, rate_range, radius):
     opts = rhythmap.options.defaults()
     basis = preprocess.trend_basis(t, dt, opts["trend_cutoff_fraction"] * rate_range[0] / 60)
     plan = spectral.plan_spectrum(t, dt, rate_range, false_alarm=opts["false_alarm"])
-    out = spectral.spectral_maps(preprocess.detrend(pooled, basis), plan)
+    out = spectral.spectral_maps(pooled, plan, trend_basis=basis)
     return {k: v.reshape(y, x) for k, v in out.items()}
 
 

@@ -115,3 +115,20 @@ def test_bad_bands_are_refused(kwargs, match):
 def test_traces_of_wrong_length_are_refused():
     with pytest.raises(InputError, match="traces must be"):
         spectral.spectral_maps(np.zeros((10, 3)), _plan())
+
+
+def test_frequency_domain_detrend_equals_time_domain(rng):
+    """The trend removed in the frequency domain gives the maps of traces detrended in time."""
+    t = np.arange(T) * DT
+    x = (3000 * np.exp(-t / 6)[:, None] * (1 + 0.2 * rng.random(50))[None]
+         + 20 * np.sin(2 * np.pi * 0.55 * t)[:, None] + rng.normal(0, 5, (T, 50))).astype(np.float32)
+    q = trend_basis(T, DT, 0.25)
+    plan = _plan((30, 180))
+    a = spectral.spectral_maps(detrend(x, q), plan)
+    b = spectral.spectral_maps(x, plan, trend_basis=q)
+    np.testing.assert_allclose(b["rate_bpm"], a["rate_bpm"], rtol=1e-4)
+    np.testing.assert_allclose(b["amplitude"], a["amplitude"], rtol=1e-3)
+    np.testing.assert_allclose(b["periodicity"], a["periodicity"], atol=2e-3)
+    # Bleaching alone is not a rhythm once the trend is removed.
+    bleach_only = (3000 * np.exp(-t / 6)[:, None] + rng.normal(0, 5, (T, 2000))).astype(np.float32)
+    assert spectral.spectral_maps(bleach_only, plan, trend_basis=q)["detected"].mean() < 0.005

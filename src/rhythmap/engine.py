@@ -26,6 +26,7 @@ from typing import Any, Callable, Iterator
 import dask
 import dask.array as da
 import numpy as np
+import scipy.sparse
 
 from . import phase as phase_mod
 from . import preprocess, propagation, regions as regions_mod, rhythm, spectral
@@ -128,23 +129,28 @@ def _tile_arrays(data: da.Array, plan: TilePlan):
 
 
 # ------------------------------------------------------------------ kernels
-def _pooled_detrended(block, halo, basis):
-    """Pool a tile with halo, drop the halo, detrend: (T, ty*tx) float32 and (ty, tx)."""
+def _pooled(block, halo):
+    """Pool a tile with halo and drop the halo: (T, ty*tx) float32 traces and (ty, tx).
+
+    Traces are not detrended here: the spectral kernel removes the trend in
+    the frequency domain, the Gram bins are detrended once on the driver, and
+    pass 2 folds the detrending into its lock-in basis (all cheaper than
+    detrending every pixel in time).
+    """
     pooled = preprocess.box_pool(block, halo)
     t, ty, tx = pooled.shape
-    traces = preprocess.detrend(pooled.reshape(t, ty * tx), basis)
-    return traces, (ty, tx)
+    return pooled.reshape(t, ty * tx), (ty, tx)
 
 
-def maps_tile_kernel(block, y0, x0, *, halo, basis, plan, gram_bin):
+def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
     Returns a dict with ``maps`` (n_maps, ty, tx) float32 in the order of
     ``spectral`` output keys, and ``bins`` (global bin ids), ``bin_sums``
     (T, n_bins) float32 and ``bin_counts`` for the Gram matrix.
     """
-    traces, (ty, tx) = _pooled_detrended(block, halo, basis)
-    out = spectral.spectral_maps(traces, plan)
+    traces, (ty, tx) = _pooled(block, halo)
+    out = spectral.spectral_maps(traces, plan, trend_basis=basis)
     maps = np.stack([out[k].reshape(ty, tx) for k in PASS1_KEYS])
     detected = out["detected"].astype(bool)
     yy, xx = np.divmod(np.arange(ty * tx), tx)
@@ -154,8 +160,10 @@ def maps_tile_kernel(block, y0, x0, *, halo, basis, plan, gram_bin):
     ids = ids[detected]
     if ids.size:
         uniq, inv = np.unique(ids, return_inverse=True)
-        sums = np.zeros((traces.shape[0], uniq.size), np.float32)
-        np.add.at(sums.T, inv, traces[:, detected].T)
+        # sum the detected traces of each bin as one sparse product (np.add.at is slow)
+        member = scipy.sparse.csr_matrix((np.ones(inv.size, np.float32), (inv, np.arange(inv.size))),
+                                         shape=(uniq.size, inv.size))
+        sums = np.ascontiguousarray((member @ traces[:, detected].T).T, dtype=np.float32)
         counts = np.bincount(inv, minlength=uniq.size)
     else:
         uniq = np.zeros(0, np.int64)
@@ -167,13 +175,14 @@ def maps_tile_kernel(block, y0, x0, *, halo, basis, plan, gram_bin):
 PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")
 
 
-def phase_tile_kernel(block, y0, x0, *, halo, basis, labels, lockin_bases, dominant):
+def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     """Pass 2 on one tile: lock-in phase and coherence of every pixel against its region's reference.
 
     Pixels outside every region get a coherence against the dominant
-    (largest) region's reference, and no phase.
+    (largest) region's reference, and no phase. The lock-in bases have the
+    trend components projected out, so B x equals B times the detrended x.
     """
-    traces, (ty, tx) = _pooled_detrended(block, halo, basis)
+    traces, (ty, tx) = _pooled(block, halo)
     lab = labels.ravel()
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
@@ -276,7 +285,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         ticks.append(Progress(done[0], total, "maps"))
 
     yield Progress(0, total, "maps")
-    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, basis=basis, plan=plan, gram_bin=gram_bin)
+    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=gram_bin)
              for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
     results = yield from _drain(tasks, on_tile, cancel, ticks)
     timings["maps_pass_s"] = time.perf_counter() - t_start
@@ -290,6 +299,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     warn: list[str] = []
     labels = regions_mod.segment(m["rate_bpm"], detected, bin_bpm=60.0 * plan.bin_hz,
                                  min_area_px=opts["min_area_px"])
+    if halo:
+        labels = regions_mod.trim_pooling_rim(labels, m["amplitude"], halo)
     coherence = np.full((y, x), np.nan, np.float32)
     phase_rad = np.full((y, x), np.nan, np.float32)
     delay_s = np.full((y, x), np.nan, np.float32)
@@ -300,6 +311,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         region_ids = [int(v) for v in range(1, labels.max() + 1)]
         yield Progress(0, len(region_ids), "references")
         traces, bin_region = _gather_bins(results, labels, gram_bin)
+        traces = preprocess.detrend(traces, basis)
         for n_done, label in enumerate(region_ids, start=1):
             cols = bin_region == label
             rate = float(np.nanmedian(m["rate_bpm"][labels == label]))
@@ -324,7 +336,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         thetas = {label: phase_mod.smooth_over_period(
             phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
             60.0 / ref.rate_mean_bpm / stack.frame_interval_s) for label, ref in references.items()}
-        bases = {label: phase_mod.lockin_basis(th) for label, th in thetas.items()}
+        bases = {label: preprocess.detrend(phase_mod.lockin_basis(th).T, basis).T
+                 for label, th in thetas.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
         done[0] = 0
         ticks.clear()
@@ -334,7 +347,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             ticks.append(Progress(done[0], total, "phase"))
 
         yield Progress(0, total, "phase")
-        tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo, basis=basis,
+        tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo,
                              labels=labels[y0:y0 + ty, x0:x0 + tx], lockin_bases=bases, dominant=dominant)
                   for b, y0, x0, ty, tx in _tile_arrays(stack.data, tiles_plan)]
         results2 = yield from _drain(tasks2, on_tile2, cancel, ticks)

@@ -27,6 +27,10 @@ FFT_BLOCK_COLUMNS = 1000
 #: correlation, see :func:`plan_spectrum`.
 NOISE_DOF_DIVISOR = 3.0
 
+#: Bins past the trend bins (and the band's lowest bin) in which the windowed
+#: trend components are subtracted, see :func:`spectral_maps`.
+TREND_LEAK_BINS = 12
+
 #: Harmonics (including the fundamental) counted by the periodicity score.
 N_HARMONICS = 5
 
@@ -140,13 +144,21 @@ def hann_window(n: int) -> np.ndarray:
     return (0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n)).astype(np.float32)
 
 
-def spectral_maps(traces, plan: SpectralPlan) -> dict[str, np.ndarray]:
+def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.ndarray]:
     """Rate, period, amplitude, periodicity and detection for each trace.
 
     Parameters
     ----------
     traces : (T, n) ndarray
-        Detrended traces, one per column (float32 kept; integers become float32).
+        Traces, one per column (float32 kept; integers become float32).
+    trend_basis : (T, K) ndarray, optional
+        Orthonormal slow-trend basis (:func:`rhythmap.preprocess.trend_basis`).
+        When given, the traces' trend components are removed in the frequency
+        domain: their windowed spectrum, ``FFT(w Q) (Q^T x)``, is subtracted
+        from the lowest bins, where it lies (the Hann window's side lobes fall
+        by 18 dB per octave, so beyond ``TREND_LEAK_BINS`` past the trend bins
+        the remainder is below 1e-4 of the trend). This equals detrending in
+        time there, for a fraction of the cost.
     plan : SpectralPlan
         From :func:`plan_spectrum` for the same T and frame interval.
 
@@ -190,16 +202,28 @@ def spectral_maps(traces, plan: SpectralPlan) -> dict[str, np.ndarray]:
     out = {k: np.full(n, np.nan, np.float32) for k in
            ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")}
     w = hann_window(plan.n_frames)
+    trend = None
+    if trend_basis is not None:
+        q = as_float(trend_basis)
+        k_cut = min(plan.n_bins, plan.band_bins[0] + plan.trend_bins + TREND_LEAK_BINS)
+        q_spec = scipy.fft.rfft(q * w[:, None], axis=0)[:k_cut]
+        trend = (q, np.ascontiguousarray(q_spec.real, np.float32), np.ascontiguousarray(q_spec.imag, np.float32))
     for start in range(0, n, FFT_BLOCK_COLUMNS):
         sl = slice(start, min(n, start + FFT_BLOCK_COLUMNS))
-        block = _spectral_block(x[:, sl], w, plan)
+        block = _spectral_block(x[:, sl], w, plan, trend)
         for key, val in block.items():
             out[key][sl] = val
     return out
 
 
-def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan) -> dict[str, np.ndarray]:
+def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> dict[str, np.ndarray]:
     spec = scipy.fft.rfft(x * w[:, None], axis=0)
+    if trend is not None:
+        q, q_re, q_im = trend
+        coef = q.T @ x
+        low = spec[:q_re.shape[0]]
+        low.real -= q_re @ coef  # real products: numpy's complex-by-real matmul is slow
+        low.imag -= q_im @ coef
     power = spec.real ** 2 + spec.imag ** 2  # (F, n) float32
     k_lo, k_hi = plan.band_bins
     n_bins = power.shape[0]
@@ -208,7 +232,10 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan) -> dict[st
     # White-noise level: the median ordinate above the trend bins is ln 2 times
     # the mean of an exponential distribution, and hardly moved by a few peaks.
     above = power[plan.trend_bins + 1:]
-    noise = np.median(above, axis=0) / np.log(2.0)
+    # median along a contiguous axis (partition is several times faster there)
+    above_t = np.ascontiguousarray(above.T)
+    mid = above_t.shape[1] // 2
+    noise = np.partition(above_t, mid, axis=1)[:, mid] / np.log(2.0)
     noise = np.maximum(noise, np.finfo(np.float32).tiny)
 
     band = power[k_lo:k_hi + 1]
