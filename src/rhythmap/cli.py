@@ -17,12 +17,13 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError, RhythmapError
-from .options import OPTIONS
+from .options import DEFAULT_RATE_RANGE_BPM, OPTIONS
+
+DEFAULT_RATE_RANGE = DEFAULT_RATE_RANGE_BPM  # the runner's name for it
 
 CAUTION = ("rhythmap is a research tool, not a diagnostic device: its rates are not clinical heart-rate or "
            "ciliary-beat-frequency measurements. Defer to clinical standards and local practice.")
 
-DEFAULT_RATE_RANGE = (20.0, 240.0)
 
 
 def _flag(name: str) -> str:
@@ -36,8 +37,8 @@ def add_analysis_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--pixel-size", type=float, metavar="UM",
                    help="pixel edge in micrometres (overrides the file's metadata)")
     p.add_argument("--rate-range", type=float, nargs=2, metavar=("LO", "HI"), default=None,
-                   help=f"band of rates to look for, beats per minute (default {DEFAULT_RATE_RANGE[0]:g} "
-                        f"{DEFAULT_RATE_RANGE[1]:g})")
+                   help=f"band of rates to look for, beats per minute (default: the --specimen preset's band, "
+                        f"else {DEFAULT_RATE_RANGE_BPM[0]:g} {DEFAULT_RATE_RANGE_BPM[1]:g})")
     p.add_argument("--channel", type=int, help="channel index for multi-channel stacks")
     p.add_argument("--plane", type=int, help="focal plane (Z) index for multi-plane stacks")
     group = p.add_argument_group("analysis options")
@@ -129,11 +130,20 @@ def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, 
             f"{str(out)!r} already exists; nothing was written. Choose another folder with -o, or add "
             "--overwrite to replace it.")
     stack = open_stack(stack_path, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
-    result = analyze(stack, rate_range_bpm or DEFAULT_RATE_RANGE, progress=progress, **(options or {}))
+    result = analyze(stack, rate_range_bpm, progress=progress, **(options or {}))
     from .report import report_writers
 
-    result.save(out, overwrite=overwrite, extra_files=report_writers(result, stack))
+    writers = report_writers(result, stack)
+    if result.parameters.get("magnified_preview"):
+        from .report import preview_writer
+
+        writers.update(preview_writer(result, stack))
+    result.save(out, overwrite=overwrite, extra_files=writers)
     return result
+
+
+SUMMARY_COLUMNS = ("region", "area_px", "rate_median_bpm", "beats", "beat_interval_cv", "loop_score",
+                   "coherence_mean", "conduction_velocity_um_s", "origin_y_px", "origin_x_px")
 
 
 def print_summary(result, out, stream=sys.stdout) -> None:
@@ -145,8 +155,10 @@ def print_summary(result, out, stream=sys.stdout) -> None:
              f"  rate (median, IQR)   {s['rate_median_bpm']:.2f} bpm, {s['rate_iqr_bpm']:.2f} bpm"]
     table = result.region_table
     if table is not None and len(table):
-        lines.append("  regions:")
-        lines.append("    " + table.to_string(index=False, float_format=lambda v: f"{v:.3g}").replace("\n", "\n    "))
+        cols = [c for c in SUMMARY_COLUMNS if c in table.columns]
+        lines.append("  regions (all columns in regions.csv):")
+        lines.append("    " + table[cols].head(20).to_string(index=False, float_format=lambda v: f"{v:.4g}")
+                     .replace("\n", "\n    "))
     for label, ref in sorted(result.references.items()):
         lines.append(f"  reference {label}: loop score {ref.score:.2f}, {len(ref.beat_times_s)} beats, "
                      f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}")

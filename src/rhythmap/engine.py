@@ -29,10 +29,10 @@ import numpy as np
 import scipy.sparse
 
 from . import phase as phase_mod
-from . import preprocess, propagation, regions as regions_mod, rhythm, spectral
+from . import presets, preprocess, propagation, regions as regions_mod, rhythm, spectral
 from ._version import __version__
 from .errors import CancelledError, InputError
-from .options import validate_options, validate_rate_range
+from .options import DEFAULT_RATE_RANGE_BPM, validate_options, validate_rate_range
 from .reference import reference_from_theta
 from .result import MAP_NAMES, RhythmResult
 from .stack import Stack, open_stack
@@ -254,8 +254,11 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     """
     if not isinstance(stack, Stack):
         stack = open_stack(stack)
-    lo_hi = validate_rate_range(rate_range_bpm)
     opts = validate_options(options)
+    specimen = presets.get_specimen(opts["specimen"]) if opts["specimen"] else None
+    if rate_range_bpm is None:
+        rate_range_bpm = specimen.rate_range_bpm if specimen else DEFAULT_RATE_RANGE_BPM
+    lo_hi = validate_rate_range(rate_range_bpm)
     t_start = time.perf_counter()
     timings: dict[str, float] = {}
     t, y, x = stack.shape
@@ -359,7 +362,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         for label, ref in list(references.items()):
             inside = labels == label
             steady = inside & (coherence >= COHERENT)
-            phase0 = phase_mod.earliest_phase(phase_rad[steady if steady.any() else inside])
+            # the first coherent pixel after the empty part of the circle: no coherent pixel wraps
+            phase0 = phase_mod.earliest_phase(phase_rad[steady if steady.any() else inside], quantile=0.0)
             # Count phase from the region's earliest pixels: its lag becomes 0, and a
             # beat is the moment the rhythm's fundamental peaks there.
             phase_rad[inside] = np.mod(phase_rad[inside] - phase0, 2 * np.pi)
@@ -382,6 +386,12 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     table = regions_mod.region_table(labels, {"rate_bpm": m["rate_bpm"], "coherence": coherence,
                                               "amplitude": m["amplitude"]}, references,
                                      pixel_size_um=stack.pixel_size_um, propagation=prop)
+    if specimen is not None:
+        warn += presets.plausibility_warnings(specimen, table, stack.frame_interval_s)
+    for ref_label, ref in references.items():
+        if ref.quasi_periodic:
+            warn.append(f"region {ref_label}: two strong loops (second-loop ratio {ref.second_loop_ratio:.2f}): "
+                        "the motion looks quasi-periodic (two rhythms), not one beat")
     result = RhythmResult(
         rate_bpm=m["rate_bpm"], period_s=m["period_s"], amplitude=m["amplitude"],
         periodicity=m["periodicity"], coherence=coherence, phase_rad=phase_rad,
@@ -469,7 +479,7 @@ def _drain(tasks, on_tile, cancel, ticks):
         th.join()
 
 
-def analyze(stack, rate_range_bpm=(30.0, 240.0), progress: ProgressFn | None = None, *,
+def analyze(stack, rate_range_bpm=None, progress: ProgressFn | None = None, *,
             cancel: Callable[[], bool] | None = None, **options) -> RhythmResult:
     """Map where a stack beats, how fast and how regularly.
 
@@ -478,8 +488,9 @@ def analyze(stack, rate_range_bpm=(30.0, 240.0), progress: ProgressFn | None = N
     stack : Stack, path or (T, Y, X) array
         From :func:`rhythmap.open_stack`; a path or array is opened with it
         (an array then needs ``frame_interval_s`` via ``open_stack`` first).
-    rate_range_bpm : (float, float)
-        Band of rates to look for, in beats per minute.
+    rate_range_bpm : (float, float), optional
+        Band of rates to look for, in beats per minute. Default: the
+        ``specimen`` preset's band, or ``options.DEFAULT_RATE_RANGE_BPM``.
     progress : callable, optional
         Called as ``progress(done, total, stage)`` after each tile.
     cancel : callable, optional, keyword-only

@@ -27,6 +27,16 @@ class Option:
     cli: bool = True
 
 
+#: The rate band searched when neither the caller nor a specimen preset gives one.
+DEFAULT_RATE_RANGE_BPM = (20.0, 240.0)
+
+
+def _specimen_names():
+    from .presets import SPECIMENS
+
+    return SPECIMENS
+
+
 def _positive(v) -> bool:
     return v > 0 and math.isfinite(v)
 
@@ -66,6 +76,14 @@ OPTIONS: tuple[Option, ...] = (
     Option("maps_only", False, bool,
            "Compute only the spectral maps (rate, period, amplitude, periodicity) in one read of the stack; "
            "skip regions' rhythm references and the per-pixel phase pass.",
+           None, "true or false"),
+    Option("specimen", "", str,
+           "Specimen preset (sets the rate band when none is given and warns about implausible results): "
+           "hpsc-cardiomyocytes, zebrafish-heart-28c, mouse-heart, airway-cilia; empty for none.",
+           lambda v: v == "" or v in _specimen_names(), "one of the preset names or empty"),
+    Option("magnified_preview", False, bool,
+           "Also write preview_magnified.tif: the first frames with the detected rhythm's band amplified "
+           "(linear Eulerian magnification) so a subtle beat becomes visible.",
            None, "true or false"),
     Option("tile_loop_map", False, bool,
            "Also compute a tile-level loop-score map (16x16 pixel tiles) in worker processes.",

@@ -1,6 +1,11 @@
-"""Figures of a result: ``report.png`` for a lab notebook.
+"""Figures of a result: ``report.png`` for a lab notebook, and the magnified preview.
 
 Drawn with matplotlib's object API on an Agg canvas (no GUI, thread-safe).
+The report shows, at a glance: the mean image with the regions outlined and
+numbered, the rate map, the activation-delay map (cyclic colours, with the
+local conduction direction), the coherence map, the persistence diagram of
+each region's rhythm, the largest region's phase and instantaneous rate over
+time with its beats, and the region table. Colour bars carry units.
 """
 
 from __future__ import annotations
@@ -8,16 +13,38 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import scipy.ndimage as ndi
 
 from .result import REPORT_FILE
 
+PREVIEW_FILE = "preview_magnified.tif"
+PREVIEW_MAX_FRAMES = 300
 
-def _mean_image(stack, max_frames=64):
+#: Columns of the region table shown in the report (all are in regions.csv).
+REPORT_COLUMNS = [("region", "region", "{:d}"), ("area_px", "area px", "{:d}"),
+                  ("rate_median_bpm", "rate bpm", "{:.1f}"), ("beats", "beats", "{:d}"),
+                  ("beat_interval_cv", "interval CV", "{:.3f}"), ("loop_score", "loop", "{:.2f}"),
+                  ("coherence_mean", "coherence", "{:.2f}"), ("conduction_velocity_um_s", "CV µm/s", "{:.3g}"),
+                  ("wave_direction_deg", "dir °", "{:.0f}"), ("origin_y_px", "origin y", "{:.1f}"),
+                  ("origin_x_px", "origin x", "{:.1f}")]
+
+
+def mean_image(stack, max_frames=64):
+    """Mean of up to ``max_frames`` frames spread over the stack (reads only those frames)."""
     if stack is None:
         return None
     t = stack.n_frames
     idx = np.linspace(0, t - 1, min(t, max_frames)).astype(int)
     return np.asarray(stack.data[idx].mean(axis=0).compute(), np.float32)
+
+
+def _fmt(fmt, v):
+    try:
+        if v != v:
+            return "–"
+        return fmt.format(int(v) if fmt == "{:d}" else v)
+    except (TypeError, ValueError):
+        return str(v)
 
 
 def render_report(result, path, stack=None) -> Path:
@@ -27,52 +54,160 @@ def render_report(result, path, stack=None) -> Path:
 
     from .cli import CAUTION
 
-    fig = Figure(figsize=(13, 8.5), dpi=100)
+    fig = Figure(figsize=(15, 13), dpi=90)
     FigureCanvasAgg(fig)
-    axes = fig.subplots(2, 3)
-    extent = None
-    if result.pixel_size_um:
-        h, w = result.shape
-        extent = (0, w * result.pixel_size_um, h * result.pixel_size_um, 0)
-    unit = "µm" if result.pixel_size_um else "px"
-    mean = _mean_image(stack)
-    ax = axes[0, 0]
-    if mean is not None:
-        ax.imshow(mean, cmap="gray", extent=extent)
-    if np.any(result.regions > 0):
-        ax.contour(result.regions > 0, levels=[0.5], colors="orange", linewidths=1.0,
-                   extent=None if extent is None else (extent[0], extent[1], extent[3], extent[2]),
-                   origin="upper")
-    ax.set_title("mean image, rhythmic area outlined")
-    panels = [(axes[0, 1], result.rate_bpm, "rate (bpm)", "viridis"),
-              (axes[0, 2], result.periodicity, "periodicity (0-1)", "magma"),
-              (axes[1, 0], result.delay_s, "activation delay (s)", "twilight"),
-              (axes[1, 1], result.coherence, "coherence (0-1)", "cividis")]
-    for ax, img, title, cmap in panels:
-        finite = np.isfinite(img)
-        vmin, vmax = (np.nanpercentile(img, [1, 99]) if finite.any() else (0, 1))
-        if title.startswith("activation"):
-            vmin, vmax = 0.0, float(np.nanmax(result.period_s)) if np.isfinite(result.period_s).any() else 1.0
-        im = ax.imshow(np.where(finite, img, np.nan), cmap=cmap, vmin=vmin, vmax=vmax, extent=extent)
-        fig.colorbar(im, ax=ax, shrink=0.8, label=title)
-        ax.set_title(title + ("" if finite.any() else " — none"))
-    for ax in axes.flat[:5]:
+    grid = fig.add_gridspec(3, 3, height_ratios=[1, 1, 0.55])
+    ax_mean, ax_rate, ax_delay = (fig.add_subplot(grid[0, i]) for i in range(3))
+    ax_coh, ax_dgm, ax_theta = (fig.add_subplot(grid[1, i]) for i in range(3))
+    ax_table = fig.add_subplot(grid[2, :])
+    h, w = result.shape
+    ps = result.pixel_size_um
+    unit = "µm" if ps else "px"
+    extent = (0, w * (ps or 1), h * (ps or 1), 0)
+    labels = result.regions
+
+    mean = mean_image(stack)
+    ax_mean.imshow(mean if mean is not None else np.zeros((h, w)), cmap="gray", extent=extent)
+    _outline(ax_mean, labels, ps)
+    ax_mean.set_title("mean image, regions outlined")
+
+    finite_rate = result.rate_bpm[np.isfinite(result.rate_bpm)]
+    lo, hi = (np.percentile(finite_rate, [1, 99]) if finite_rate.size else (0, 1))
+    im = ax_rate.imshow(result.rate_bpm, cmap="viridis", vmin=lo, vmax=max(hi, lo + 1e-3), extent=extent)
+    fig.colorbar(im, ax=ax_rate, shrink=0.8, label="rate (bpm)")
+    ax_rate.set_title("rate" + ("" if finite_rate.size else " (no rhythm found)"))
+
+    # Each region's delay as a fraction of its own period, so the cyclic colours wrap where the delay does.
+    cycle = np.full(result.delay_s.shape, np.nan, np.float32)
+    periods = []
+    for label, ref in sorted(result.references.items()):
+        inside = labels == label
+        period = _period(ref)
+        periods.append(f"{label}: {period:.3g} s")
+        cycle[inside] = result.delay_s[inside] / period
+    im = ax_delay.imshow(cycle, cmap="twilight", vmin=0, vmax=1, extent=extent)
+    fig.colorbar(im, ax=ax_delay, shrink=0.8, label="activation delay (fraction of the region's period)")
+    vy, vx = result.extra_maps.get("velocity_y_um_s"), result.extra_maps.get("velocity_x_um_s")
+    if vy is not None and np.isfinite(vy).any():
+        step = max(1, min(h, w) // 16)
+        yy, xx = np.mgrid[step // 2:h:step, step // 2:w:step]
+        u, v = vx[yy, xx], vy[yy, xx]
+        norm = np.hypot(u, v)
+        ok = np.isfinite(norm) & (norm > 0)
+        ax_delay.quiver((xx[ok] + 0.5) * (ps or 1), (yy[ok] + 0.5) * (ps or 1), u[ok] / norm[ok], -v[ok] / norm[ok],
+                        color="k", alpha=0.6, scale=25, width=0.004)
+    ax_delay.set_title("activation delay (periods " + ", ".join(periods) + ")\narrows: direction of travel",
+                       fontsize=10)
+
+    im = ax_coh.imshow(result.coherence, cmap="cividis", vmin=0, vmax=1, extent=extent)
+    fig.colorbar(im, ax=ax_coh, shrink=0.8, label="coherence (0-1)")
+    ax_coh.set_title("coherence with the region's rhythm")
+    for ax in (ax_mean, ax_rate, ax_delay, ax_coh):
         ax.set_xlabel(f"x ({unit})")
         ax.set_ylabel(f"y ({unit})")
-    ax = axes[1, 2]
-    rate = result.rate_bpm[np.isfinite(result.rate_bpm)]
-    if rate.size:
-        ax.hist(rate, bins=60, color="0.3")
-    ax.set_xlabel("rate (bpm)")
-    ax.set_ylabel("pixels")
-    ax.set_title("rate distribution")
-    fig.suptitle(f"rhythmap {result.version} — {Path(str(result.input.get('identity', {}).get('source', ''))).name}")
-    fig.text(0.5, 0.005, CAUTION, ha="center", va="bottom", fontsize=7, color="0.35")
-    fig.tight_layout(rect=(0, 0.02, 1, 0.97))
+
+    top = 0.0
+    for label, ref in sorted(result.references.items()):
+        d = np.asarray(ref.diagram, float).reshape(-1, 2)
+        if d.size:
+            ax_dgm.scatter(d[:, 0], d[:, 1], s=14, label=f"region {label} (loop {ref.score:.2f})")
+            top = max(top, float(d.max()))
+    top = top or 2.0
+    ax_dgm.plot([0, top * 1.05], [0, top * 1.05], color="0.6", lw=1)
+    ax_dgm.set_xlabel("birth (window distance)")
+    ax_dgm.set_ylabel("death (window distance)")
+    ax_dgm.set_title("persistence diagram, H1")
+    if result.references:
+        ax_dgm.legend(fontsize=8, loc="lower right")
+    else:
+        ax_dgm.text(0.5, 0.5, "no rhythm reference", ha="center", transform=ax_dgm.transAxes)
+
+    if result.references:
+        sizes = {lab: int((labels == lab).sum()) for lab in result.references}
+        label = max(sizes, key=sizes.get)
+        ref = result.references[label]
+        ax_theta.plot(ref.time_s, ref.theta_rad, color="0.5", lw=0.8, label="phase θ(t)")
+        ax_theta.set_ylim(0, 2 * np.pi)
+        ax_theta.set_ylabel("phase θ (rad)")
+        ax_theta.set_xlabel("time (s)")
+        for bt in ref.beat_times_s:
+            ax_theta.axvline(bt, color="tab:red", lw=0.6, alpha=0.6)
+        ax2 = ax_theta.twinx()
+        ax2.plot(ref.time_s, ref.inst_rate_bpm, color="tab:blue", lw=1.5)
+        ax2.set_ylabel("instantaneous rate (bpm)", color="tab:blue")
+        ax_theta.set_title(f"region {label}: {len(ref.beat_times_s)} beats (red), "
+                           f"mean {ref.rate_mean_bpm:.1f} bpm")
+    else:
+        ax_theta.text(0.5, 0.5, "no rhythm reference", ha="center", transform=ax_theta.transAxes)
+        ax_theta.set_title("phase and rate over time")
+
+    ax_table.axis("off")
+    table = result.region_table
+    warnings = list(result.parameters.get("warnings", []))
+    if table is not None and len(table):
+        cols = [c for c in REPORT_COLUMNS if c[0] in table.columns]
+        cells = [[_fmt(fmt, row[c]) for c, _, fmt in cols] for _, row in table.head(12).iterrows()]
+        tab = ax_table.table(cellText=cells, colLabels=[name for _, name, _ in cols], loc="upper center")
+        tab.auto_set_font_size(False)
+        tab.set_fontsize(9)
+        tab.scale(1, 1.3)
+    else:
+        ax_table.text(0.5, 0.8, "no beating region found", ha="center", fontsize=12)
+    if warnings:
+        ax_table.text(0.0, 0.02, "\n".join("warning: " + x for x in warnings[:4]), fontsize=8, color="tab:red",
+                      va="bottom", transform=ax_table.transAxes, wrap=True)
+    source = Path(str(result.input.get("identity", {}).get("source", ""))).name
+    fig.suptitle(f"rhythmap {result.version} — {source} — frame interval {result.frame_interval_s:g} s"
+                 + (f", pixel {ps:g} µm" if ps else ""))
+    fig.text(0.5, 0.004, CAUTION, ha="center", va="bottom", fontsize=8, color="0.3")
+    fig.tight_layout(rect=(0, 0.015, 1, 0.97))
     fig.savefig(path)
     return Path(path)
+
+
+def _period(ref) -> float:
+    iv = ref.beat_intervals_s
+    return float(iv.mean()) if iv.size >= 2 else 60.0 / ref.rate_mean_bpm
+
+
+def _outline(ax, labels, ps):
+    scale = ps or 1.0
+    if not np.any(labels > 0):
+        return
+    for label in np.unique(labels[labels > 0]).tolist():
+        mask = labels == label
+        ax.contour((np.arange(labels.shape[1]) + 0.5) * scale, (np.arange(labels.shape[0]) + 0.5) * scale,
+                   mask.astype(float), levels=[0.5], colors="orange", linewidths=1.0)
+        cy, cx = ndi.center_of_mass(mask)
+        ax.text((cx + 0.5) * scale, (cy + 0.5) * scale, str(label), color="yellow", fontsize=11,
+                ha="center", va="center", weight="bold")
 
 
 def report_writers(result, stack=None) -> dict:
     """File writers for :meth:`RhythmResult.save`: ``{name: callable(folder)}``."""
     return {REPORT_FILE: lambda folder: render_report(result, Path(folder) / REPORT_FILE, stack)}
+
+
+def preview_writer(result, stack, *, alpha: float = 10.0) -> dict:
+    """Writer of ``preview_magnified.tif``: the first frames with the main rhythm's band amplified.
+
+    The band is the largest region's mean rate +-20 %. Only the preview's frames
+    are read (at most ``PREVIEW_MAX_FRAMES``), so memory stays small.
+    """
+    from .magnify import magnify
+
+    def write(folder):
+        import tifffile
+
+        if not result.references:
+            return
+        sizes = {lab: int((result.regions == lab).sum()) for lab in result.references}
+        ref = result.references[max(sizes, key=sizes.get)]
+        f = ref.rate_mean_bpm / 60.0
+        n = min(stack.n_frames, PREVIEW_MAX_FRAMES)
+        frames = np.asarray(stack.data[:n].compute(), np.float32)
+        out = magnify(frames, stack.frame_interval_s, (0.8 * f, 1.2 * f), alpha=alpha)
+        tifffile.imwrite(Path(folder) / PREVIEW_FILE, out, imagej=True,
+                         metadata={"axes": "TYX", "finterval": stack.frame_interval_s})
+
+    return {PREVIEW_FILE: write}

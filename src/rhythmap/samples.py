@@ -20,7 +20,7 @@ SEED = 20261202
 
 
 def well_sheet():
-    return synthetic.well_scene((250, 80, 80), frame_interval_s=0.04, pixel_size_um=4.0,
+    return synthetic.well_scene((250, 80, 80), frame_interval_s=0.04, pixel_size_um=4.0, speed_um_s=800.0,
                                 pacemaker=(22.0, 22.0), cluster_center=(58.0, 60.0), cluster_radius_px=9.0,
                                 rng=SEED)
 

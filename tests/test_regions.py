@@ -1,0 +1,96 @@
+"""Regions and propagation on synthetic scenes with known truth (DESIGN.md / issue targets)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import rhythmap
+from rhythmap import propagation, regions, synthetic
+
+
+@pytest.fixture(scope="module")
+def two_clusters():
+    s = synthetic.well_scene((300, 96, 96), frame_interval_s=0.04, pixel_size_um=4.0, speed_um_s=1500.0,
+                             pacemaker=(30.0, 28.0), cluster_center=(70.0, 70.0), cluster_radius_px=11.0, rng=3)
+    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    return s, res
+
+
+def test_two_rhythms_two_regions(two_clusters):
+    s, res = two_clusters
+    assert res.regions.max() == 2
+    table = res.region_table.set_index("region")
+    for label in (1, 2):
+        truth = s.truth["regions"] == label
+        found = res.regions == np.bincount(res.regions[truth]).argmax()
+        iou = (truth & found).sum() / (truth | found).sum()
+        assert iou >= 0.85, (label, iou)
+        assert table.loc[label, "rate_median_bpm"] == pytest.approx(s.truth["rate_by_region_bpm"][label], abs=0.5)
+        oy, ox = table.loc[label, ["origin_y_px", "origin_x_px"]]
+        ty, tx = s.truth["origins"][label]
+        assert np.hypot(oy - ty, ox - tx) <= 3.0, (label, oy, ox)
+
+
+def test_region_table_units_in_column_names(two_clusters):
+    _, res = two_clusters
+    cols = res.region_table.columns
+    for c in ("area_px", "area_um2", "rate_median_bpm", "rate_iqr_bpm", "conduction_velocity_um_s",
+              "wave_direction_deg", "beat_interval_mean_s"):
+        assert c in cols
+    row = res.region_table.iloc[0]
+    assert row.area_um2 == pytest.approx(row.area_px * 16.0)
+    assert row.beats >= 10 and row.loop_score > 0.5 and not row.quasi_periodic
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_plane_wave_speed_and_direction_by_both_routes(seed):
+    """Bayly et al. 1998: speed = 1/|grad T| (activation time) and omega/|grad phi| (phase): both within
+    5 % of the true speed and 5 degrees of the true direction."""
+    s = synthetic.plane_wave_scene((300, 48, 48), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
+                                   speed_um_s=6000.0, direction_deg=30.0, noise_sd=10.0, rng=seed)
+    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
+    row = res.region_table.iloc[0]
+    assert row.conduction_velocity_um_s == pytest.approx(6000.0, rel=0.05)
+    assert row.wave_direction_deg == pytest.approx(30.0, abs=5)
+    mask = res.regions == 1
+    period = res.references[1].beat_intervals_s.mean()
+    act = propagation.unwrap_delay(res.delay_s, mask, period)
+    sp_t, dir_t, _ = propagation.velocity_from_activation(act, mask, 5.0)
+    sp_p, dir_p, _ = propagation.velocity_from_phase(res.phase_rad, mask, 2 * np.pi / period, 5.0)
+    for sp, dr in ((sp_t, dir_t), (sp_p, dir_p)):
+        assert np.nanmedian(sp) == pytest.approx(6000.0, rel=0.05)
+        assert np.nanmedian(dr) == pytest.approx(30.0, abs=5)
+    v = res.extra_maps["velocity_x_um_s"], res.extra_maps["velocity_y_um_s"]
+    assert np.degrees(np.arctan2(np.nanmedian(v[1]), np.nanmedian(v[0]))) == pytest.approx(30.0, abs=5)
+
+
+def test_pure_noise_with_bleaching_and_debris_has_no_region():
+    s = synthetic.noise_scene((300, 64, 64), debris=8, rng=9)
+    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (20, 150))
+    assert (res.regions > 0).mean() <= 0.01
+    assert len(res.region_table) == res.regions.max()
+
+
+def test_segment_splits_touching_rhythms_and_drops_specks():
+    rate = np.full((20, 30), np.nan)
+    rate[2:18, 2:14] = 60.0
+    rate[2:18, 14:28] = 75.0  # touching, but a different rhythm
+    rate[0, 29] = 60.0        # a one-pixel speck
+    lab = regions.segment(rate, np.isfinite(rate), bin_bpm=2.0, min_area_px=10)
+    assert lab.max() == 2 and lab[0, 29] == 0
+    assert lab[10, 5] != lab[10, 20]
+
+
+def test_unwrap_and_local_gradient_on_a_known_field():
+    yy, xx = np.mgrid[0:40, 0:50].astype(float)
+    act = 0.01 * np.hypot(yy - 5, xx - 7)  # point source, 100 px/s
+    period = 0.15
+    mask = np.ones_like(act, bool)
+    back = propagation.unwrap_delay(np.mod(act, period), mask, period, start=(5, 7))
+    np.testing.assert_allclose(back, act, atol=1e-9)
+    fit = propagation.fit_region(act, mask)
+    assert fit["model"] == "point"
+    assert fit["speed_um_s"] == pytest.approx(100.0, rel=1e-3)
+    assert np.hypot(fit["origin_yx"][0] - 5, fit["origin_yx"][1] - 7) < 0.1
