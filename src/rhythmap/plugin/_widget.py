@@ -1,0 +1,428 @@
+"""The analysis panel: choose a stack layer and parameters, run the engine in a thread, show the maps.
+
+The panel gathers the layer, frame interval, pixel size, rate band and the
+options of :data:`rhythmap.options.OPTIONS` (its fields are built from that
+table, never from copies of it), then drives :func:`rhythmap.engine.iter_analyze`
+in a generator ``thread_worker``: every tile the engine finishes is one yield,
+one tick of napari's progress bar, and one point where Cancel takes effect.
+Result layers are added on the main thread when the worker returns; a rerun
+replaces the previous result layers of the same source layer, and a cancelled
+run adds nothing.
+"""
+
+from __future__ import annotations
+
+import inspect
+import threading
+import time
+
+from napari.qt.threading import thread_worker
+from napari.utils import progress
+from napari.viewer import Viewer
+from qtpy.QtCore import QTimer, Signal
+from qtpy.QtWidgets import (
+    QCheckBox,
+    QComboBox,
+    QDoubleSpinBox,
+    QFormLayout,
+    QHBoxLayout,
+    QLabel,
+    QLineEdit,
+    QPushButton,
+    QSpinBox,
+    QVBoxLayout,
+    QWidget,
+)
+from superqt import QCollapsible
+
+from rhythmap import engine, open_stack, options as options_mod, presets
+from rhythmap._version import __version__
+from rhythmap.errors import CancelledError, RhythmapError
+from rhythmap.options import OPTIONS, validate_options, validate_rate_range
+
+from ._layers import META_KEY, REGION_CONTOUR_PX, result_layer_data
+
+#: Options shown at once; the others sit under "more options".
+PRIMARY_OPTIONS = ("pooling_radius_px",)
+#: Options set by the specimen list rather than their own field.
+COMBO_OPTIONS = ("specimen",)
+CUSTOM_BAND = "custom band"
+
+
+def default_rate_range_bpm() -> tuple[float, float]:
+    """The engine's own default band (read from the engine, not copied)."""
+    band = getattr(options_mod, "DEFAULT_RATE_RANGE_BPM", None) or \
+        inspect.signature(engine.analyze).parameters["rate_range_bpm"].default
+    return tuple(float(v) for v in band)
+
+
+@thread_worker(start_thread=False)
+def analysis_job(stack, rate_range_bpm, cancel, options):
+    """Generator worker: each engine tick is yielded (progress + cancel point); returns the result."""
+    result = yield from engine.iter_analyze(stack, rate_range_bpm, cancel=cancel, **options)
+    return result
+
+
+def stack_layer_frame_interval(layer) -> float | None:
+    """Frame interval of a layer from its metadata, or its time scale if that was ever set."""
+    fi = layer.metadata.get("frame_interval_s")
+    if fi:
+        return float(fi)
+    s0 = float(layer.scale[0])
+    return s0 if s0 != 1.0 else None
+
+
+def stack_layer_pixel_size(layer) -> float | None:
+    """Pixel size of a layer from its metadata, or its x scale if that was ever set."""
+    ps = layer.metadata.get("pixel_size_um")
+    if ps:
+        return float(ps)
+    sx = float(layer.scale[-1])
+    return sx if sx != 1.0 else None
+
+
+def is_stack_layer(layer) -> bool:
+    """Image layers that can be analysed: (T, Y, X), (T, C, Y, X) or RGB (T, Y, X, S)."""
+    from napari.layers import Image
+
+    if not isinstance(layer, Image) or META_KEY in layer.metadata:
+        return False
+    return layer.ndim in (3, 4)
+
+
+class AnalysisPanel(QWidget):
+    """Dock widget: run rhythmap on an image layer and overlay the maps on it."""
+
+    #: Emitted on the main thread after the result layers were added (the source layer's name).
+    analysis_finished = Signal(str)
+    #: Emitted when a run ends without a result ("cancelled" or the error message).
+    analysis_stopped = Signal(str)
+
+    def __init__(self, napari_viewer: Viewer):
+        super().__init__()
+        self.viewer = napari_viewer
+        self.worker = None
+        self.last_result = None
+        self._cancel = threading.Event()
+        self._pbar = None
+        self._run_started = 0.0
+        self._stop_reported = False
+        self._pending: list[tuple] = []
+        self._pending_done = None
+
+        form = QFormLayout()
+        self.layer_box = QComboBox()
+        self.layer_box.setToolTip("Image layer with frames along the first axis: (T, Y, X) or (T, C, Y, X).")
+        form.addRow("stack layer", self.layer_box)
+        self.channel_spin = QSpinBox()
+        self.channel_spin.setToolTip("Channel to analyse, for a (T, C, Y, X) layer.")
+        form.addRow("channel", self.channel_spin)
+        self.frame_interval = QDoubleSpinBox()
+        self.frame_interval.setDecimals(6)
+        self.frame_interval.setRange(0.0, 1e5)
+        self.frame_interval.setSingleStep(0.001)
+        self.frame_interval.setSpecialValueText("required")
+        self.frame_interval.setSuffix(" s")
+        self.frame_interval.setToolTip("Seconds between frames (prefilled from the layer's metadata or time scale).")
+        form.addRow("frame interval", self.frame_interval)
+        self.pixel_size = QDoubleSpinBox()
+        self.pixel_size.setDecimals(4)
+        self.pixel_size.setRange(0.0, 1e5)
+        self.pixel_size.setSpecialValueText("unknown")
+        self.pixel_size.setSuffix(" µm")
+        self.pixel_size.setToolTip("Pixel edge in micrometres; 'unknown' keeps distances in pixels.")
+        form.addRow("pixel size", self.pixel_size)
+
+        self.preset_box = QComboBox()
+        self.preset_box.addItem(CUSTOM_BAND)
+        for i, p in enumerate(presets.SPECIMENS.values(), start=1):
+            self.preset_box.addItem(p.name)
+            self.preset_box.setItemData(i, f"{p.description}: {p.rate_range_bpm[0]:g}-{p.rate_range_bpm[1]:g} bpm "
+                                           f"(plausible {p.plausible_bpm[0]:g}-{p.plausible_bpm[1]:g}); {p.source}",
+                                        3)  # Qt.ToolTipRole
+        form.addRow("specimen", self.preset_box)
+        band = QHBoxLayout()
+        lo, hi = default_rate_range_bpm()
+        self.rate_lo, self.rate_hi = QDoubleSpinBox(), QDoubleSpinBox()
+        for box, value in ((self.rate_lo, lo), (self.rate_hi, hi)):
+            box.setRange(0.0, 1e6)
+            box.setDecimals(1)
+            box.setValue(value)
+            box.setSuffix(" bpm")
+            band.addWidget(box)
+        self.rate_lo.setToolTip("Lowest rate to look for, beats per minute.")
+        self.rate_hi.setToolTip("Highest rate to look for, beats per minute (below the Nyquist rate).")
+        form.addRow("rate band", band)
+
+        self.option_widgets: dict[str, QWidget] = {}
+        more = QFormLayout()
+        for opt in OPTIONS:
+            widget = self._option_widget(opt)
+            self.option_widgets[opt.name] = widget
+            if opt.name in COMBO_OPTIONS:
+                continue  # set through the specimen list above
+            (form if opt.name in PRIMARY_OPTIONS else more).addRow(opt.name.replace("_", " "), widget)
+        more_box = QWidget()
+        more_box.setLayout(more)
+        self.more_options = QCollapsible("more options")
+        self.more_options.addWidget(more_box)
+
+        buttons = QHBoxLayout()
+        self.run_button = QPushButton("Run")
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.setEnabled(False)
+        buttons.addWidget(self.run_button)
+        buttons.addWidget(self.cancel_button)
+        self.status = QLabel("")
+        self.status.setWordWrap(True)
+
+        outer = QVBoxLayout(self)
+        outer.addLayout(form)
+        outer.addWidget(self.more_options)
+        outer.addLayout(buttons)
+        outer.addWidget(self.status)
+        outer.addStretch(1)
+
+        self.layer_box.currentTextChanged.connect(self._prefill_from_layer)
+        self.preset_box.currentTextChanged.connect(self._apply_preset)
+        self.rate_lo.valueChanged.connect(self._band_edited)
+        self.rate_hi.valueChanged.connect(self._band_edited)
+        self.run_button.clicked.connect(self.run)
+        self.cancel_button.clicked.connect(self.cancel)
+        events = self.viewer.layers.events
+        for ev in (events.inserted, events.removed, events.reordered):
+            ev.connect(self._refresh_layers)
+        self._refresh_layers()
+
+    # ----------------------------------------------------------------- fields
+    @staticmethod
+    def _option_widget(opt):
+        if opt.kind is bool:
+            w = QCheckBox()
+            w.setChecked(bool(opt.default))
+        elif opt.kind is int:
+            w = QSpinBox()
+            w.setRange(-(2**31 - 1), 2**31 - 1)
+            w.setValue(int(opt.default))
+        elif opt.kind is float:
+            w = QLineEdit(f"{opt.default:g}")
+        else:
+            w = QLineEdit(str(opt.default))
+        w.setToolTip(f"{opt.help} Allowed: {opt.allowed}.")
+        return w
+
+    def _refresh_layers(self, event=None):
+        current = self.layer_box.currentText()
+        names = [layer.name for layer in self.viewer.layers if is_stack_layer(layer)]
+        self.layer_box.blockSignals(True)
+        self.layer_box.clear()
+        self.layer_box.addItems(names)
+        if current in names:
+            self.layer_box.setCurrentText(current)
+        self.layer_box.blockSignals(False)
+        if self.layer_box.currentText() != current:
+            self._prefill_from_layer(self.layer_box.currentText())
+
+    def _prefill_from_layer(self, name):
+        layer = self._layer(name)
+        if layer is None:
+            return
+        self.frame_interval.setValue(stack_layer_frame_interval(layer) or 0.0)
+        self.pixel_size.setValue(stack_layer_pixel_size(layer) or 0.0)
+        n_channels = layer.data.shape[1] if (layer.ndim == 4 and not layer.rgb) else 1
+        self.channel_spin.setRange(0, n_channels - 1)
+        self.channel_spin.setEnabled(n_channels > 1)
+
+    def _apply_preset(self, name):
+        preset = presets.SPECIMENS.get(name)
+        if "specimen" in self.option_widgets:  # the engine also checks plausibility against it
+            self.set_options(specimen=preset.name if preset else "")
+        if preset is None:
+            return
+        for box, value in zip((self.rate_lo, self.rate_hi), preset.rate_range_bpm):
+            box.blockSignals(True)
+            box.setValue(value)
+            box.blockSignals(False)
+
+    def _band_edited(self, _value):
+        if self.preset_box.currentText() != CUSTOM_BAND:
+            self.preset_box.setCurrentText(CUSTOM_BAND)  # an edited band is no longer the preset's
+
+    def _layer(self, name):
+        return self.viewer.layers[name] if name and name in self.viewer.layers else None
+
+    # ----------------------------------------------------------------- parameters
+    def set_layer(self, name: str) -> None:
+        """Choose the stack layer by name (and prefill its frame interval and pixel size)."""
+        self.layer_box.setCurrentText(name)
+        self._prefill_from_layer(name)
+
+    def set_options(self, **values) -> None:
+        """Set option fields by name (as in :data:`rhythmap.options.OPTIONS`)."""
+        for name, value in values.items():
+            w = self.option_widgets[name]
+            if isinstance(w, QCheckBox):
+                w.setChecked(bool(value))
+            elif isinstance(w, QSpinBox):
+                w.setValue(int(value))
+            else:
+                w.setText(str(value))
+
+    def options(self) -> dict:
+        """The options as entered, validated by :func:`rhythmap.options.validate_options`."""
+        raw = {}
+        for name, w in self.option_widgets.items():
+            if isinstance(w, QCheckBox):
+                raw[name] = w.isChecked()
+            elif isinstance(w, QSpinBox):
+                raw[name] = w.value()
+            else:
+                raw[name] = w.text().strip()
+        return validate_options(raw)
+
+    def rate_range_bpm(self) -> tuple[float, float]:
+        return validate_rate_range((self.rate_lo.value(), self.rate_hi.value()))
+
+    def make_stack(self):
+        """Open the chosen layer (and channel) as an engine :class:`~rhythmap.Stack`."""
+        layer = self._layer(self.layer_box.currentText())
+        if layer is None:
+            raise RhythmapError("choose an image layer with frames along the first axis, e.g. a sample "
+                                "from File > Open Sample > rhythmap.")
+        fi = self.frame_interval.value()
+        if fi <= 0:
+            raise RhythmapError(f"layer {layer.name!r} has no frame interval; enter the seconds between "
+                                "frames in 'frame interval' (50 frames per second is 0.02 s).")
+        ps = self.pixel_size.value() or None
+        data = layer.data[0] if layer.multiscale else layer.data
+        if layer.rgb:
+            axes, channel = "TYXS", None
+        elif layer.ndim == 4:
+            axes, channel = "TCYX", self.channel_spin.value()
+        else:
+            axes, channel = "TYX", None
+        return open_stack(data, frame_interval_s=fi, pixel_size_um=ps, axes=axes, channel=channel)
+
+    # ----------------------------------------------------------------- running
+    def run(self) -> None:
+        """Start an analysis of the chosen layer in a worker thread."""
+        if self.busy:
+            return
+        try:
+            stack = self.make_stack()
+            band = self.rate_range_bpm()
+            opts = self.options()
+        except RhythmapError as exc:
+            self.status.setText(f"Not started: {exc}")
+            return
+        layer = self._layer(self.layer_box.currentText())
+        source = layer.name
+        place = {"scale": tuple(layer.scale[-2:]), "translate": tuple(layer.translate[-2:]),
+                 "units": tuple(str(u) for u in layer.units[-2:]),
+                 "extra_meta": {"channel": self.channel_spin.value() if self.channel_spin.isEnabled() else None,
+                                "plugin_version": __version__}}
+        self._cancel = threading.Event()
+        self._stop_reported = False
+        worker = analysis_job(stack, band, self._cancel.is_set, opts)
+        worker.yielded.connect(self._on_tick)
+        worker.returned.connect(lambda result: self._on_result(result, source, place))
+        worker.errored.connect(self._on_error)
+        worker.aborted.connect(lambda: self._on_stopped("cancelled"))
+        worker.finished.connect(self._on_finished)
+        self.worker = worker
+        self._pbar = progress(total=0, desc=f"rhythmap: {source}")
+        self.run_button.setEnabled(False)
+        self.cancel_button.setEnabled(True)
+        self.status.setText(f"Analysing {source!r} ({band[0]:g}-{band[1]:g} bpm)...")
+        self._run_started = time.perf_counter()
+        worker.start()
+
+    def cancel(self) -> None:
+        """Stop the running analysis at the engine's next tile; no result layers are added."""
+        if self.worker is None:
+            return
+        self._cancel.set()
+        self.worker.quit()
+        self.status.setText("Cancelling...")
+
+    def _on_tick(self, tick):
+        pbar = self._pbar  # updating the bar may process events, and the run may end meanwhile
+        if pbar is None:
+            return
+        if pbar.total != tick.total:
+            pbar.total = tick.total
+        pbar.set_description(f"rhythmap: {tick.stage}")
+        if self._pbar is pbar:
+            pbar.update(tick.done - pbar.n)
+
+    def _on_result(self, result, source, place):
+        self.last_result = result
+        self.remove_result_layers(source)
+        # One layer per turn of the event loop: napari needs a few hundred ms to
+        # build each layer's visual, and the viewer should not freeze for all of them.
+        self._pending = list(result_layer_data(result, source, **place))
+        self._pending_done = (result, source)
+        self._add_next_layer()
+
+    def _add_next_layer(self):
+        if self._pending:
+            data, kwargs, layer_type = self._pending.pop(0)
+            layer = getattr(self.viewer, f"add_{layer_type}")(data, **kwargs)
+            if layer_type == "labels":  # outlines over the maps
+                layer.contour = REGION_CONTOUR_PX
+                layer.opacity = 1.0
+                layer.visible = True
+            QTimer.singleShot(0, self._add_next_layer)
+            return
+        result, source = self._pending_done
+        if source in self.viewer.layers:  # keep the raw stack selected for the next run
+            self.viewer.layers.selection.active = self.viewer.layers[source]
+        summary = result.summary()
+        self.status.setText(
+            f"Done in {time.perf_counter() - self._run_started:.1f} s: median rate "
+            f"{summary['rate_median_bpm']:.1f} bpm over {100 * summary['rhythmic_fraction']:.0f}% of the frame, "
+            f"{summary['n_regions']} region(s).")
+        self._pending_done = None
+        self._set_idle()
+        self.analysis_finished.emit(source)
+
+    def remove_result_layers(self, source: str) -> None:
+        """Remove the result layers made from ``source`` by an earlier run."""
+        for layer in list(self.viewer.layers):
+            info = layer.metadata.get(META_KEY)
+            if isinstance(info, dict) and info.get("source_layer") == source and "run_id" in info:
+                self.viewer.layers.remove(layer)
+
+    def _on_error(self, exc):
+        if isinstance(exc, CancelledError):
+            self._on_stopped("cancelled")
+        else:
+            self._on_stopped(f"{type(exc).__name__}: {exc}")
+
+    def _on_stopped(self, why):
+        if self._stop_reported:  # a cancel may arrive both as an abort and as CancelledError
+            return
+        self._stop_reported = True
+        self.status.setText("Cancelled; no result layers were added." if why == "cancelled" else f"Failed: {why}")
+        self.analysis_stopped.emit(why)
+
+    def _on_finished(self):
+        self.worker = None
+        if self._pbar is not None:
+            self._pbar.close()
+            self._pbar = None
+        self.cancel_button.setEnabled(False)
+        if self._pending_done is None:
+            self._set_idle()
+
+    def _set_idle(self):
+        self.run_button.setEnabled(True)
+        self.cancel_button.setEnabled(False)
+
+    @property
+    def busy(self) -> bool:
+        """True while an analysis runs or its layers are being added."""
+        return self.worker is not None or self._pending_done is not None
+
+
+__all__ = ["AnalysisPanel", "analysis_job"]
