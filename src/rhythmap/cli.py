@@ -85,6 +85,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--plane", type=int)
     c.add_argument("--overwrite", action="store_true")
 
+    sub.add_parser("batch", help="analyse many stacks on a dask cluster (options: rhythmap batch --help; "
+                                 "see runner/README.md)", add_help=False)
+
     m = sub.add_parser("make-samples", help="regenerate the synthetic sample stacks and their ground truth")
     m.add_argument("folder", nargs="?", default="sample_stacks")
     return parser
@@ -194,6 +197,11 @@ def _convert(args) -> None:
 
 
 def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if argv[:1] == ["batch"]:  # the batch runner has its own options
+        from .batch import main as batch_main
+
+        return batch_main(argv[1:])
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

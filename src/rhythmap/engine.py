@@ -315,21 +315,32 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         yield Progress(0, len(region_ids), "references")
         traces, bin_region = _gather_bins(results, labels, gram_bin)
         traces = preprocess.detrend(traces, basis)
-        for n_done, label in enumerate(region_ids, start=1):
+        jobs = {}
+        for label in region_ids:
             cols = bin_region == label
-            rate = float(np.nanmedian(m["rate_bpm"][labels == label]))
             if cols.sum() < 2:
                 warn.append(f"region {label}: too few pixels for a rhythm reference")
                 continue
-            try:
-                references[label] = rhythm.region_reference(
-                    traces[:, cols], stack.frame_interval_s, rate, n_landmarks=opts["n_landmarks"],
-                    max_frames=opts["max_frames_topology"])
-            except InputError as exc:
-                warn.append(f"region {label}: no rhythm reference ({exc})")
-            yield Progress(n_done, len(region_ids), "references")
+            rate = float(np.nanmedian(m["rate_bpm"][labels == label]))
+            jobs[label] = (rhythm.region_reference, (traces[:, cols], stack.frame_interval_s, rate),
+                           {"n_landmarks": opts["n_landmarks"], "max_frames": opts["max_frames_topology"]})
+        n_done = 0
+        for label, outcome in _run_in_processes(jobs):
+            n_done += 1
+            if isinstance(outcome, InputError):
+                warn.append(f"region {label}: no rhythm reference ({outcome})")
+            elif isinstance(outcome, BaseException):
+                raise outcome
+            else:
+                references[label] = outcome
+            yield Progress(n_done, len(jobs), "references")
             if cancel is not None and cancel():
                 raise CancelledError("the analysis was cancelled")
+        if opts["tile_loop_map"]:
+            yield Progress(0, 1, "loop map")
+            extra_loop = _tile_loop_map(traces, bin_region, results, labels, m["rate_bpm"], gram_bin,
+                                        stack.frame_interval_s, opts)
+            yield Progress(1, 1, "loop map")
         timings["references_s"] = time.perf_counter() - t_ref
 
     if references:
@@ -376,11 +387,17 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         timings["phase_pass_s"] = time.perf_counter() - t_phase
 
     extra = {"peak_score": m["peak_score"]}
+    if opts["tile_loop_map"] and not opts["maps_only"] and labels.max() > 0:
+        extra["loop_score_tiles"] = extra_loop
     prop: dict = {}
     if references:
         periods = {label: region_period_s(ref) for label, ref in references.items()}
+        yield Progress(0, 1, "propagation")
+        if cancel is not None and cancel():
+            raise CancelledError("the analysis was cancelled")
         prop, vfield = propagation.region_propagation(delay_s, labels, periods, stack.pixel_size_um,
                                                       stack.frame_interval_s)
+        yield Progress(1, 1, "propagation")
         extra["velocity_y_um_s"] = vfield[..., 0].astype(np.float32)
         extra["velocity_x_um_s"] = vfield[..., 1].astype(np.float32)
     table = regions_mod.region_table(labels, {"rate_bpm": m["rate_bpm"], "coherence": coherence,
@@ -417,6 +434,103 @@ def region_period_s(ref) -> float:
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.
 COHERENT = 0.5
+
+
+_POOL = None
+
+
+def _process_pool():
+    """A reusable pool of worker processes for ripser, which holds the GIL (DESIGN.md).
+
+    Spawned, not forked (the caller may be a Qt application with threads), and
+    created once per process on first use. None where a process may not have
+    children (a daemonic worker), in which case work runs in this thread.
+    """
+    global _POOL
+    if _POOL is None:
+        import atexit
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        if multiprocessing.current_process().daemon:
+            return None
+        _POOL = ProcessPoolExecutor(max_workers=max(1, min(4, os.cpu_count() or 1)),
+                                    mp_context=multiprocessing.get_context("spawn"))
+        atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
+    return _POOL
+
+
+def _run_in_processes(jobs: dict):
+    """Run ``{key: (fn, args, kwargs)}`` in worker processes; yield (key, result or exception) as they end.
+
+    On a dask.distributed cluster the jobs go to its workers; otherwise to a
+    local spawned process pool (or this thread where that is impossible).
+    """
+    if not jobs:
+        return
+    try:
+        from distributed import as_completed, default_client
+
+        client = default_client()
+    except (ImportError, ValueError):
+        client = None
+    if client is not None:
+        futures = {client.submit(fn, *args, pure=False, **kwargs): key for key, (fn, args, kwargs) in jobs.items()}
+        for fut in as_completed(list(futures)):
+            try:
+                yield futures[fut], fut.result()
+            except Exception as exc:  # returned to the caller, which decides
+                yield futures[fut], exc
+        return
+    pool = _process_pool()
+    if pool is None:
+        for key, (fn, args, kwargs) in jobs.items():
+            try:
+                yield key, fn(*args, **kwargs)
+            except Exception as exc:
+                yield key, exc
+        return
+    from concurrent.futures import as_completed as cf_completed
+
+    futures = {pool.submit(fn, *args, **kwargs): key for key, (fn, args, kwargs) in jobs.items()}
+    try:
+        for fut in cf_completed(futures):
+            try:
+                yield futures[fut], fut.result()
+            except Exception as exc:
+                yield futures[fut], exc
+    finally:
+        for fut in futures:
+            fut.cancel()
+
+
+def _tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, frame_interval_s, opts):
+    """Loop score of every TILE_LOOP_PX square tile, from the Gram bins inside it, in worker processes."""
+    ids = np.array(sorted({b for r in results for b in r["bins"].tolist()}), np.int64)
+    by, bx = (ids >> 32) * gram_bin, (ids & 0xFFFFFFFF) * gram_bin
+    tile_id = (by // TILE_LOOP_PX) * 1_000_000 + (bx // TILE_LOOP_PX)
+    jobs = {}
+    for tid in np.unique(tile_id).tolist():
+        cols = (tile_id == tid) & (bin_region > 0)
+        if cols.sum() < 2:
+            continue
+        ty, tx = divmod(tid, 1_000_000)
+        block = rate_map[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX]
+        rate = float(np.nanmedian(block))
+        if not np.isfinite(rate):
+            continue
+        jobs[(ty, tx)] = (rhythm.loop_score_of_traces, (traces[:, cols], frame_interval_s, rate),
+                          {"n_landmarks": min(100, opts["n_landmarks"]),
+                           "max_frames": opts["max_frames_topology"]})
+    out = np.full(labels.shape, np.nan, np.float32)
+    for (ty, tx), score in _run_in_processes(jobs):
+        if not isinstance(score, BaseException):
+            out[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX] = score
+    return out
+
+
+#: Edge of the tiles of the optional loop-score map, pixels.
+TILE_LOOP_PX = 16
 
 
 def _gather_bins(results, labels, gram_bin):

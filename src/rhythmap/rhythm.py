@@ -85,3 +85,21 @@ def region_reference(traces, frame_interval_s: float, rate_bpm: float, *, n_land
     time_s = np.arange(xs.shape[0]) * dt
     return reference_from_distances(time_s, np.sqrt(d2), dim=choice.dim, tau=choice.tau,
                                     n_landmarks=n_landmarks, coeff=coeff)
+
+
+def loop_score_of_traces(traces, frame_interval_s: float, rate_bpm: float, *, n_landmarks: int = 100,
+                         max_frames: int = 1500) -> float:
+    """Loop score (max H1 persistence / sqrt 3) of the sliding-window cloud of a few traces.
+
+    The building block of the tile-level loop-score map: the same window
+    choice and distances as :func:`region_reference`, persistence only.
+    """
+    from .topology import h1_persistence, loop_score
+
+    x = np.asarray(traces, np.float64)
+    period_frames = 60.0 / rate_bpm / frame_interval_s
+    step = decimation_for(x.shape[0], period_frames, max_frames)
+    xs = x[::step]
+    choice = embedding.window_for_period(period_frames / step)
+    d2 = embedding.sliding_window_sqdist(frame_gram(xs), dim=choice.dim, tau=choice.tau, center=True, normalize=True)
+    return float(loop_score(h1_persistence(np.sqrt(d2), n_landmarks=n_landmarks).diagram))

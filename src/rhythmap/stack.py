@@ -146,7 +146,8 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
     ((40, 8, 9), 0.05)
     """
     if isinstance(source, (np.ndarray, da.Array)):
-        data = source if isinstance(source, da.Array) else da.from_array(source, chunks="auto")
+        data = source if isinstance(source, da.Array) else da.from_array(
+            source, chunks=_default_chunks(source.shape, source.dtype))
         arr_axes = (axes or ("TYX" if data.ndim == 3 else "")).upper()
         if len(arr_axes) != data.ndim:
             raise InputError(
