@@ -37,10 +37,11 @@ from .reference import reference_from_theta
 from .result import MAP_NAMES, RhythmResult
 from .stack import Stack, open_stack
 
-#: Bytes of working memory per pixel per frame while a tile is analysed
-#: (float32 copy, pooled copy, detrended copy, windowed copy, complex spectrum,
-#: power), measured roughly from the kernel's allocations.
-WORK_BYTES_PER_SAMPLE = 28
+#: Bytes of working memory per pixel per frame while a tile is analysed: the
+#: input (2 for uint16), its float32 copy, the pooling accumulator and the
+#: pooled traces (4 each); the spectral kernel then works on blocks of about a
+#: thousand traces, which adds little.
+WORK_BYTES_PER_SAMPLE = 14
 
 TILE_TASK_PREFIX = "rhythmap-tile"
 
@@ -325,7 +326,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             jobs[label] = (rhythm.region_reference, (traces[:, cols], stack.frame_interval_s, rate),
                            {"n_landmarks": opts["n_landmarks"], "max_frames": opts["max_frames_topology"]})
         n_done = 0
-        for label, outcome in _run_in_processes(jobs):
+        for label, outcome in _run_in_processes(jobs, opts["worker_processes"]):
             n_done += 1
             if isinstance(outcome, InputError):
                 warn.append(f"region {label}: no rhythm reference ({outcome})")
@@ -439,7 +440,7 @@ COHERENT = 0.5
 _POOL = None
 
 
-def _process_pool():
+def _process_pool(n_workers: int):
     """A reusable pool of worker processes for ripser, which holds the GIL (DESIGN.md).
 
     Spawned, not forked (the caller may be a Qt application with threads), and
@@ -447,24 +448,29 @@ def _process_pool():
     children (a daemonic worker), in which case work runs in this thread.
     """
     global _POOL
-    if _POOL is None:
+    import multiprocessing
+
+    if n_workers < 1 or multiprocessing.current_process().daemon:
+        return None
+    if _POOL is None or _POOL[1] != n_workers:
         import atexit
-        import multiprocessing
         from concurrent.futures import ProcessPoolExecutor
 
-        if multiprocessing.current_process().daemon:
-            return None
-        _POOL = ProcessPoolExecutor(max_workers=max(1, min(4, os.cpu_count() or 1)),
-                                    mp_context=multiprocessing.get_context("spawn"))
-        atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
-    return _POOL
+        if _POOL is not None:
+            _POOL[0].shutdown(wait=False, cancel_futures=True)
+        pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=multiprocessing.get_context("spawn"))
+        atexit.register(pool.shutdown, wait=False, cancel_futures=True)
+        _POOL = (pool, n_workers)
+    return _POOL[0]
 
 
-def _run_in_processes(jobs: dict):
-    """Run ``{key: (fn, args, kwargs)}`` in worker processes; yield (key, result or exception) as they end.
+def _run_in_processes(jobs: dict, n_processes: int):
+    """Run ``{key: (fn, args, kwargs)}``; yield (key, result or exception) as they end.
 
     On a dask.distributed cluster the jobs go to its workers; otherwise to a
-    local spawned process pool (or this thread where that is impossible).
+    local pool of ``n_processes`` spawned processes, or to this thread when
+    ``n_processes`` is 0 or processes cannot be started (a daemonic process, a
+    script without a ``__main__`` guard: the remaining jobs then run here).
     """
     if not jobs:
         return
@@ -482,26 +488,44 @@ def _run_in_processes(jobs: dict):
             except Exception as exc:  # returned to the caller, which decides
                 yield futures[fut], exc
         return
-    pool = _process_pool()
-    if pool is None:
-        for key, (fn, args, kwargs) in jobs.items():
-            try:
-                yield key, fn(*args, **kwargs)
-            except Exception as exc:
-                yield key, exc
-        return
-    from concurrent.futures import as_completed as cf_completed
+    pool = _process_pool(n_processes)
+    pending = dict(jobs)
+    if pool is not None:
+        from concurrent.futures import as_completed as cf_completed
+        from concurrent.futures.process import BrokenProcessPool
 
-    futures = {pool.submit(fn, *args, **kwargs): key for key, (fn, args, kwargs) in jobs.items()}
-    try:
-        for fut in cf_completed(futures):
-            try:
-                yield futures[fut], fut.result()
-            except Exception as exc:
-                yield futures[fut], exc
-    finally:
-        for fut in futures:
-            fut.cancel()
+        futures = {pool.submit(fn, *args, **kwargs): key for key, (fn, args, kwargs) in jobs.items()}
+        try:
+            for fut in cf_completed(futures):
+                try:
+                    result = fut.result()
+                except BrokenProcessPool:
+                    _reset_pool()
+                    warnings.warn("worker processes could not start (is the script missing an "
+                                  "`if __name__ == \"__main__\":` guard?); running in this thread instead.",
+                                  RuntimeWarning, stacklevel=2)
+                    break
+                except Exception as exc:
+                    result = exc
+                yield futures[fut], result
+                pending.pop(futures[fut])
+            else:
+                return
+        finally:
+            for fut in futures:
+                fut.cancel()
+    for key, (fn, args, kwargs) in pending.items():
+        try:
+            yield key, fn(*args, **kwargs)
+        except Exception as exc:
+            yield key, exc
+
+
+def _reset_pool():
+    global _POOL
+    if _POOL is not None:
+        _POOL[0].shutdown(wait=False, cancel_futures=True)
+    _POOL = None
 
 
 def _tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, frame_interval_s, opts):
@@ -523,7 +547,7 @@ def _tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, fram
                           {"n_landmarks": min(100, opts["n_landmarks"]),
                            "max_frames": opts["max_frames_topology"]})
     out = np.full(labels.shape, np.nan, np.float32)
-    for (ty, tx), score in _run_in_processes(jobs):
+    for (ty, tx), score in _run_in_processes(jobs, max(1, opts["worker_processes"])):
         if not isinstance(score, BaseException):
             out[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX] = score
     return out

@@ -85,8 +85,14 @@ OPTIONS: tuple[Option, ...] = (
            "Also write preview_magnified.tif: the first frames with the detected rhythm's band amplified "
            "(linear Eulerian magnification) so a subtle beat becomes visible.",
            None, "true or false"),
+    Option("worker_processes", 0, int,
+           "Worker processes for the persistent-homology steps (rhythm references, tile loop map); 0 runs "
+           "them in the calling thread. Processes keep a GUI responsive (ripser holds Python's GIL); a "
+           "script using them needs the usual `if __name__ == \"__main__\":` guard. On a dask.distributed "
+           "cluster these steps go to its workers instead.",
+           lambda v: 0 <= v <= 256, "an integer from 0 to 256"),
     Option("tile_loop_map", False, bool,
-           "Also compute a tile-level loop-score map (16x16 pixel tiles) in worker processes.",
+           "Also compute a tile-level loop-score map (16x16 pixel tiles), in worker processes (at least one).",
            None, "true or false"),
 )
 

@@ -43,18 +43,20 @@ def box_pool(block, radius: int) -> np.ndarray:
     >>> box_pool(np.ones((2, 5, 5)), 1).shape
     (2, 3, 3)
     """
-    x = as_float(block)
     if radius == 0:
-        return x
+        return as_float(block)
+    x = np.asarray(block)
     r = int(radius)
     if x.ndim != 3 or x.shape[1] <= 2 * r or x.shape[2] <= 2 * r:
         raise InputError(f"box_pool needs a (T, Y, X) block larger than 2*radius={2 * r}; got {x.shape}.")
     ny, nx = x.shape[1] - 2 * r, x.shape[2] - 2 * r
-    acc = np.zeros((x.shape[0], ny, x.shape[2]), np.float32)
-    for dy in range(2 * r + 1):
-        acc += x[:, dy:dy + ny, :]
-    out = np.zeros((x.shape[0], ny, nx), np.float32)
-    for dx in range(2 * r + 1):
+    # the first slice is converted to float32 while copied; the rest are added
+    # straight from the input type (no full float32 copy of the block)
+    acc = x[:, 0:ny, :].astype(np.float32)
+    for dy in range(1, 2 * r + 1):
+        np.add(acc, x[:, dy:dy + ny, :], out=acc, casting="unsafe")
+    out = acc[:, :, 0:nx].copy()
+    for dx in range(1, 2 * r + 1):
         out += acc[:, :, dx:dx + nx]
     out *= np.float32(1.0 / (2 * r + 1) ** 2)
     return out

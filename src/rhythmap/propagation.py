@@ -31,20 +31,30 @@ def unwrap_delay(delay_s, mask, period_s: float, start=None) -> np.ndarray:
     period_s : float
         The period.
     start : (y, x), optional
-        Where unwrapping starts; default the pixel with the smallest delay.
+        The pixel whose delay is kept as it is (the others are shifted by whole
+        periods relative to it); default the pixel with the smallest delay.
 
     Returns
     -------
-    (Y, X) float64 ndarray, NaN outside the mask: delays that grow without
-    wrapping away from the start (each pixel within half a period of the
-    mean of its already-unwrapped neighbours).
+    (Y, X) float64 ndarray, NaN outside the mask: delays that change smoothly
+    across the region, without jumps of a period.
+
+    Notes
+    -----
+    The delay is turned into a phase 2 pi d / period and unwrapped with the
+    reliability-sorted path-following algorithm of scikit-image
+    (``skimage.restoration.unwrap_phase``; Herraez et al. 2002), which
+    unwraps the most reliable (smoothest) pixels first and so tolerates
+    noisy pixels.
 
     Examples
     --------
     >>> d = np.mod(np.arange(12.0), 5.0)[None, :].repeat(3, 0)
-    >>> unwrap_delay(d, np.ones_like(d, bool), 5.0)[0].tolist()[:8]
+    >>> [round(v, 6) for v in unwrap_delay(d, np.ones_like(d, bool), 5.0)[0].tolist()[:8]]
     [0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0]
     """
+    from skimage.restoration import unwrap_phase
+
     d = np.asarray(delay_s, float)
     m = np.asarray(mask, bool) & np.isfinite(d)
     out = np.full(d.shape, np.nan)
@@ -52,21 +62,18 @@ def unwrap_delay(delay_s, mask, period_s: float, start=None) -> np.ndarray:
         return out
     if start is None:
         start = np.unravel_index(np.argmin(np.where(m, d, np.inf)), d.shape)
-    visited = np.zeros_like(m)
-    visited[start] = True
-    out[start] = d[start]
-    cross = ndi.generate_binary_structure(2, 1)
-    while True:
-        frontier = ndi.binary_dilation(visited, cross) & m & ~visited
-        if not frontier.any():
-            break
-        vals = np.where(visited, out, 0.0)
-        s = ndi.convolve(vals, cross.astype(float), mode="constant")
-        n = ndi.convolve(visited.astype(float), cross.astype(float), mode="constant")
-        ref = s[frontier] / n[frontier]
-        raw = d[frontier]
-        out[frontier] = ref + np.mod(raw - ref + period_s / 2, period_s) - period_s / 2
-        visited |= frontier
+    ys, xs = np.nonzero(m)
+    y0, y1, x0, x1 = ys.min(), ys.max() + 1, xs.min(), xs.max() + 1
+    sub_m = m[y0:y1, x0:x1]
+    phase = np.where(sub_m, 2 * np.pi * np.mod(d[y0:y1, x0:x1], period_s) / period_s, 0.0)
+    if sub_m.sum() == 1 or min(sub_m.shape) < 2:
+        unwrapped = np.unwrap(phase.ravel()).reshape(phase.shape)
+    else:
+        unwrapped = np.asarray(unwrap_phase(np.ma.array(phase, mask=~sub_m)).filled(np.nan))
+    sub = unwrapped * period_s / (2 * np.pi)
+    anchor = sub[start[0] - y0, start[1] - x0]
+    sub += d[start] - anchor  # keep the start pixel's own delay (removes the whole-period offset)
+    out[y0:y1, x0:x1] = np.where(sub_m, sub, np.nan)
     return out
 
 
@@ -164,6 +171,10 @@ def velocity_from_phase(phase_rad, mask, omega_rad_s: float, pixel_size_um=None,
     return velocity_from_activation(phi / omega_rad_s, mask, pixel_size_um, radius)
 
 
+#: Largest number of pixels used in a region's plane-wave / point-source fit.
+FIT_MAX_POINTS = 20000
+
+
 def fit_region(act_s, mask, pixel_size_um=None) -> dict:
     """Fit a plane wave and a point source to a region's activation times; keep the better.
 
@@ -182,6 +193,9 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
                 "rms_s": np.nan}
     yy, xx = np.nonzero(ok)
     t = np.asarray(act_s, float)[ok]
+    if t.size > FIT_MAX_POINTS:  # an even subsample is plenty for four parameters
+        keep = np.random.default_rng(0).choice(t.size, FIT_MAX_POINTS, replace=False)
+        yy, xx, t = yy[keep], xx[keep], t[keep]
     a = np.column_stack([np.ones_like(t), yy, xx])
     coef, *_ = np.linalg.lstsq(a, t, rcond=None)
     plane_rms = float(np.sqrt(np.mean((a @ coef - t) ** 2)))
