@@ -45,7 +45,9 @@ def scene():
 
 def test_fields_come_from_the_option_table_and_the_layer(panel, scene):
     assert list(panel.option_widgets) == [o.name for o in OPTIONS]
-    assert panel.options() == {o.name: o.default for o in OPTIONS}
+    from rhythmap.plugin._widget import GUI_DEFAULTS
+
+    assert panel.options() == {o.name: GUI_DEFAULTS.get(o.name, o.default) for o in OPTIONS}
     add_scene(panel.viewer, scene)
     assert panel.layer_box.currentText() == "well sheet"
     assert panel.frame_interval.value() == pytest.approx(scene.frame_interval_s)

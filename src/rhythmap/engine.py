@@ -231,7 +231,13 @@ def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | 
                     raise CancelledError("the analysis was cancelled")
 
     # Passed to this call only, so concurrent analyses do not see each other's ticks.
-    return list(dask.compute(*tasks, scheduler="threads", callbacks=[_Ticks()._callback]))
+    # One BLAS thread per tile thread: the kernels' small matrix products gain
+    # nothing from more, and two pools of BLAS threads fighting over the same
+    # cores nearly halved the speed of a pass (measured).
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return list(dask.compute(*tasks, scheduler="threads", callbacks=[_Ticks()._callback]))
 
 
 def _tile_task(fn, block, y0, x0, **kwargs):

@@ -46,6 +46,9 @@ from ._layers import META_KEY, REGION_CONTOUR_PX, result_layer_data
 PRIMARY_OPTIONS = ("pooling_radius_px",)
 #: Options set by the specimen list rather than their own field.
 COMBO_OPTIONS = ("specimen",)
+#: Where the panel starts from other values than the engine's defaults, and why:
+#: ripser holds Python's GIL, so in the viewer it runs in a worker process.
+GUI_DEFAULTS = {"worker_processes": 1}
 CUSTOM_BAND = "custom band"
 
 
@@ -197,17 +200,18 @@ class AnalysisPanel(QWidget):
     # ----------------------------------------------------------------- fields
     @staticmethod
     def _option_widget(opt):
+        default = GUI_DEFAULTS.get(opt.name, opt.default)
         if opt.kind is bool:
             w = QCheckBox()
-            w.setChecked(bool(opt.default))
+            w.setChecked(bool(default))
         elif opt.kind is int:
             w = QSpinBox()
             w.setRange(-(2**31 - 1), 2**31 - 1)
-            w.setValue(int(opt.default))
+            w.setValue(int(default))
         elif opt.kind is float:
-            w = QLineEdit(f"{opt.default:g}")
+            w = QLineEdit(f"{default:g}")
         else:
-            w = QLineEdit(str(opt.default))
+            w = QLineEdit(str(default))
         w.setToolTip(f"{opt.help} Allowed: {opt.allowed}.")
         return w
 
