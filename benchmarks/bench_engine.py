@@ -9,6 +9,7 @@ reports its wall time and peak resident memory:
   full      rhythmap.analyze (maps + Gram + references + per-pixel phase)
   naive     read in bands + numpy.fft.rfft along time + argmax (a typical script)
   maps/4    the spectral maps of a quarter of the field (memory must not grow with the stack)
+  topology  everything after the Gram pass for T = 1000 frames (target <= 3 s)
 
 and prints a table of times, ratios to the read pass, and peak memory.
 Targets (DESIGN.md): maps <= 2x read, full <= 3x read, both faster than naive,
@@ -74,6 +75,19 @@ def step(name: str, store: str) -> dict:
             h = st.shape[1] // 2
             st = rhythmap.open_stack(st.data[:, :h, :h], frame_interval_s=st.frame_interval_s)
         rhythmap.analyze(st, (30, 180), maps_only=(name != "full"))
+    elif name == "topology":
+        # Everything after the Gram pass for T = 1000 frames: G = X X^T of the capped
+        # bin traces (20 000, the default cap), sliding-window distances, persistence
+        # on 300 landmarks, circular coordinates, beats.
+        from rhythmap.rhythm import region_reference
+
+        rng = np.random.default_rng(1)
+        t = np.arange(1000)[:, None] * 0.02
+        x = (np.sin(2 * np.pi * 1.2 * (t - rng.uniform(0, 0.3, 20000)[None]))
+             + rng.normal(0, 1.0, (1000, 20000))).astype(np.float32)
+        t0 = time.perf_counter()
+        ref = region_reference(x, 0.02, 72.0)
+        assert abs(ref.rate_mean_bpm - 72.0) < 1.0
     elif name == "naive":
         z = zarr.open_group(store, mode="r")["0"]
         dt = 0.02
@@ -97,7 +111,7 @@ def main(argv=None) -> int:
     ap.add_argument("--size-gb", type=float, default=1.26)
     ap.add_argument("--frames", type=int, default=600)
     ap.add_argument("--workdir", default=None)
-    ap.add_argument("--steps", default="read,maps,full,naive,maps/4")
+    ap.add_argument("--steps", default="read,maps,full,naive,maps/4,topology")
     ap.add_argument("--step", help=argparse.SUPPRESS)
     ap.add_argument("--store", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)

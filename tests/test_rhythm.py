@@ -128,3 +128,22 @@ def test_maps_only_skips_the_second_pass(well):
     res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04), (20, 150), maps_only=True)
     assert res.references == {} and np.all(np.isnan(res.phase_rad))
     assert "phase_pass_s" not in res.timings and np.isfinite(res.rate_bpm).any()
+
+
+def test_worker_processes_give_the_same_references_and_a_tile_loop_map(well):
+    """ripser in spawned worker processes (the GUI's setting) gives the in-thread numbers."""
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    here = rhythmap.analyze(st, (20, 150))
+    there = rhythmap.analyze(st, (20, 150), worker_processes=2, tile_loop_map=True)
+    for label, ref in here.references.items():
+        np.testing.assert_allclose(there.references[label].beat_times_s, ref.beat_times_s)
+        assert there.references[label].score == pytest.approx(ref.score)
+    loop = there.extra_maps["loop_score_tiles"]
+    assert loop.shape == well.frames.shape[1:]
+    tissue = well.truth["regions"] > 0
+    assert np.nanmedian(loop[tissue]) > 0.5
+    for y0 in range(0, loop.shape[0], 16):  # a tile without any region pixel has no score
+        for x0 in range(0, loop.shape[1], 16):
+            if not there.regions[y0:y0 + 16, x0:x0 + 16].any():
+                assert np.all(np.isnan(loop[y0:y0 + 16, x0:x0 + 16]))
+    assert "loop_score_tiles" not in here.extra_maps
