@@ -118,3 +118,22 @@ def test_bad_arguments(well, err, kwargs, match):
     st = rhythmap.open_stack(well.frames, frame_interval_s=0.04)
     with pytest.raises(err, match=match):
         rhythmap.analyze(st, **kwargs)
+
+
+@pytest.mark.parametrize("frames, kwargs, match", [
+    (np.zeros((16, 16)), {}, "single image"),
+    (np.zeros((1, 16, 16)), {}, "1 frame"),
+    (np.zeros((5, 16, 16)), {}, "at least 8 frames"),
+    (np.full((200, 16, 16), 7.0), {}, "constant"),
+])
+def test_bad_stacks(frames, kwargs, match):
+    with pytest.raises(InputError, match=match):
+        rhythmap.analyze(rhythmap.open_stack(frames, frame_interval_s=0.05, **kwargs), (30, 180))
+
+
+def test_nan_frames_are_a_clear_error(well):
+    frames = well.frames.astype(np.float32)
+    frames[17, 3:5, 3:5] = np.nan
+    frames[40] = np.inf
+    with pytest.raises(InputError, match=r"NaN or infinite values \(frames \[17, 40\]"):
+        rhythmap.analyze(rhythmap.open_stack(frames, frame_interval_s=0.04), (20, 150), pooling_radius_px=0)

@@ -168,3 +168,17 @@ def test_unknown_and_broken_files(tmp_path):
         open_stack(q)
     with pytest.raises(FileNotFoundError):  # the builtin is caught too
         open_stack(tmp_path / "missing.zarr")
+
+
+@pytest.mark.parametrize("compression", [None, "zlib"])
+def test_truncated_tiff_is_a_clear_error(tmp_path, rng, compression):
+    import rhythmap
+
+    data = rng.integers(0, 4000, (200, 32, 32)).astype(np.uint16)
+    p = tmp_path / "t.tif"
+    tifffile.imwrite(p, data, imagej=True, compression=compression, metadata={"axes": "TYX", "finterval": 0.05})
+    raw = p.read_bytes()
+    p.write_bytes(raw[: len(raw) // 2])
+    with pytest.raises(InputError, match="t.tif"):
+        st = open_stack(p)
+        rhythmap.analyze(st, (30, 180))

@@ -31,7 +31,7 @@ import scipy.sparse
 from . import phase as phase_mod
 from . import presets, preprocess, propagation, regions as regions_mod, rhythm, spectral
 from ._version import __version__
-from .errors import CancelledError, InputError
+from .errors import CancelledError, InputError, RhythmapError
 from .options import DEFAULT_RATE_RANGE_BPM, validate_options, validate_rate_range
 from .reference import reference_from_theta
 from .result import MAP_NAMES, RhythmResult
@@ -130,6 +130,27 @@ def _tile_arrays(data: da.Array, plan: TilePlan):
 
 
 # ------------------------------------------------------------------ kernels
+class KernelError(RuntimeError):
+    """An unexpected failure inside one of rhythmap's own tile kernels (a bug, not bad input)."""
+
+
+def _kernel(fn):
+    """Mark a tile kernel: its own unexpected errors become KernelError, so a failure of the
+    *reading* tasks (a truncated or corrupt file) can be told apart and reported as bad input."""
+    import functools
+
+    @functools.wraps(fn)
+    def run(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except (RhythmapError, KernelError):
+            raise
+        except Exception as exc:
+            raise KernelError(f"{fn.__name__} failed: {exc!r}") from exc
+
+    return run
+
+
 def _pooled(block, halo):
     """Pool a tile with halo and drop the halo: (T, ty*tx) float32 traces and (ty, tx).
 
@@ -143,6 +164,7 @@ def _pooled(block, halo):
     return pooled.reshape(t, ty * tx), (ty, tx)
 
 
+@_kernel
 def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
@@ -150,6 +172,12 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     ``spectral`` output keys, and ``bins`` (global bin ids), ``bin_sums``
     (T, n_bins) float32 and ``bin_counts`` for the Gram matrix.
     """
+    if np.issubdtype(np.asarray(block).dtype, np.floating) and not np.isfinite(block).all():
+        bad = np.nonzero(~np.isfinite(block).all(axis=(1, 2)))[0]
+        raise InputError(
+            f"the stack holds NaN or infinite values (frames {bad[:5].tolist()}{' ...' if bad.size > 5 else ''} "
+            f"near pixel y={y0}, x={x0}); rhythmap needs finite intensities. Replace or drop those frames "
+            "(e.g. interpolate them from their neighbours) and run again.")
     traces, (ty, tx) = _pooled(block, halo)
     out = spectral.spectral_maps(traces, plan, trend_basis=basis)
     maps = np.stack([out[k].reshape(ty, tx) for k in PASS1_KEYS])
@@ -173,9 +201,10 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     return {"y0": y0, "x0": x0, "maps": maps, "bins": uniq, "bin_sums": sums, "bin_counts": counts}
 
 
-PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")
+PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant")
 
 
+@_kernel
 def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     """Pass 2 on one tile: lock-in phase and coherence of every pixel against its region's reference.
 
@@ -297,7 +326,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     yield Progress(0, total, "maps")
     tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=gram_bin)
              for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
-    results = yield from _drain(tasks, on_tile, cancel, ticks)
+    results = yield from _drain(tasks, on_tile, cancel, ticks, stack.source)
     timings["maps_pass_s"] = time.perf_counter() - t_start
 
     maps = np.full((len(PASS1_KEYS), y, x), np.nan, np.float32)
@@ -305,6 +334,10 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         ty, tx = r["maps"].shape[1:]
         maps[:, r["y0"]:r["y0"] + ty, r["x0"]:r["x0"] + tx] = r["maps"]
     m = dict(zip(PASS1_KEYS, maps))
+    if np.all(m.pop("constant") > 0):
+        raise InputError(
+            f"{stack.source}: no pixel changes over time (the stack is constant), so there is no rhythm to "
+            "measure. Check that the right file, channel or plane was opened.")
     detected = m["detected"] > 0
     warn: list[str] = []
     labels = regions_mod.segment(m["rate_bpm"], detected, bin_bpm=60.0 * plan.bin_hz,
@@ -371,7 +404,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo,
                              labels=labels[y0:y0 + ty, x0:x0 + tx], lockin_bases=bases, dominant=dominant)
                   for b, y0, x0, ty, tx in _tile_arrays(stack.data, tiles_plan)]
-        results2 = yield from _drain(tasks2, on_tile2, cancel, ticks)
+        results2 = yield from _drain(tasks2, on_tile2, cancel, ticks, stack.source)
         for r in results2:
             ty, tx = r["phase"].shape
             sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
@@ -582,7 +615,7 @@ def _gather_bins(results, labels, gram_bin):
     return traces, regions_mod.bin_labels(labels, ids, gram_bin)
 
 
-def _drain(tasks, on_tile, cancel, ticks):
+def _drain(tasks, on_tile, cancel, ticks, source="the stack"):
     """Run tasks in a worker thread while yielding the ticks it produces.
 
     The generator stays responsive: the graph runs in a background thread and
@@ -601,10 +634,17 @@ def _drain(tasks, on_tile, cancel, ticks):
     def is_cancelled():
         return stop.is_set() or (cancel is not None and cancel())
 
-    def work():
+    def work():  # errors are handed to the caller's thread
         try:
             q.put(("done", _run_tiles(tasks, tick, is_cancelled)))
-        except BaseException as exc:  # handed to the caller's thread
+        except (RhythmapError, KernelError) as exc:
+            q.put(("error", exc))
+        except Exception as exc:  # raised while reading the data, not by our kernels
+            err = InputError(f"reading {source} failed: {type(exc).__name__}: {exc}. The file may be "
+                             "truncated or corrupt; check it (or export it again) and retry.")
+            err.__cause__ = exc
+            q.put(("error", err))
+        except BaseException as exc:
             q.put(("error", exc))
 
     th = threading.Thread(target=work, name="rhythmap-pass", daemon=True)

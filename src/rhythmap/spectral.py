@@ -168,7 +168,8 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
         ``rate_bpm``, ``period_s``, ``amplitude`` (in input units, of the
         rhythm's fundamental; NaN where not detected), ``periodicity`` in
         [0, 1] (defined for every trace), ``peak_score`` (peak power over the
-        white-noise level) and ``detected`` (0/1).
+        white-noise level), ``detected`` (0/1) and ``constant`` (1 where the
+        trace does not change at all; never detected).
 
     Notes
     -----
@@ -200,7 +201,7 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
         raise InputError(f"traces must be (T={plan.n_frames}, n); got shape {x.shape}.")
     n = x.shape[1]
     out = {k: np.full(n, np.nan, np.float32) for k in
-           ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected")}
+           ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant")}
     w = hann_window(plan.n_frames)
     trend = None
     if trend_basis is not None:
@@ -282,6 +283,10 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> 
             harm += np.where(valid, power[np.clip(kk, 0, n_bins - 1), cols], 0.0)
     periodicity = np.where(total > 0, harm / np.where(total > 0, total, 1.0), 0.0)
 
+    # A trace that does not change is not a rhythm, however the rounding noise of
+    # its spectrum compares with itself.
+    constant = (x.max(axis=0) - x.min(axis=0)) <= 1e-6 * (1.0 + np.abs(x[0]))
+    detected &= ~constant
     rate = np.where(detected, freq_hz * 60.0, np.nan)
     return {
         "rate_bpm": rate,
@@ -290,4 +295,5 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> 
         "periodicity": np.clip(periodicity, 0.0, 1.0),
         "peak_score": score,
         "detected": detected.astype(np.float32),
+        "constant": constant.astype(np.float32),
     }

@@ -148,6 +148,10 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
     if isinstance(source, (np.ndarray, da.Array)):
         data = source if isinstance(source, da.Array) else da.from_array(
             source, chunks=_default_chunks(source.shape, source.dtype))
+        if data.ndim < 3:
+            raise InputError(
+                f"the array has shape {tuple(data.shape)}: a single image, not a time series. rhythmap needs "
+                "frames over time, (T, Y, X).")
         arr_axes = (axes or ("TYX" if data.ndim == 3 else "")).upper()
         if len(arr_axes) != data.ndim:
             raise InputError(
@@ -212,7 +216,8 @@ def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta) -> S
             raise InputError(f"pixel_size_um={ps!r} must be a positive number of micrometres, e.g. 0.65.")
     t, y, x = data.shape
     if t < 8 or y < 1 or x < 1:
-        raise InputError(f"{source!r} has shape {tuple(data.shape)}: a stack needs at least 8 frames.")
+        raise InputError(f"{source!r} has {t} frame{'s' if t != 1 else ''} of {y} x {x} pixels: a time series "
+                         "needs at least 8 frames (and in practice several cycles of the slowest rhythm).")
     if not (np.issubdtype(data.dtype, np.number) or data.dtype == bool):
         raise InputError(f"{source!r} holds {data.dtype} values; rhythmap needs numeric pixels.")
     return Stack(data=data, frame_interval_s=fi, pixel_size_um=ps, source=source, meta=meta)
