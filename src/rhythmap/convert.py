@@ -9,14 +9,12 @@ when complete.
 
 from __future__ import annotations
 
-import os
-import shutil
-import uuid
 from pathlib import Path
 
 import numpy as np
 
 from . import omezarr
+from ._atomic import atomic_folder
 from .errors import ResultExistsError
 from .stack import Stack, open_stack
 
@@ -56,11 +54,9 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     dest = Path(out)
     if dest.exists() and not overwrite:
         raise ResultExistsError(f"{str(dest)!r} already exists; choose another name or add --overwrite.")
-    tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
     t, y, x = stack.shape
     dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
-    try:
-        dest.parent.mkdir(parents=True, exist_ok=True)
+    with atomic_folder(dest, overwrite=overwrite, create=False) as tmp:
         arr = omezarr.create_stack(tmp, (t, y, x), dtype, frame_interval_s=stack.frame_interval_s,
                                    pixel_size_um=stack.pixel_size_um, chunk_yx=CHUNK_YX)
         for y0 in range(0, y, CHUNK_YX):
@@ -68,14 +64,4 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
             arr[:, y0:y0 + band.shape[1], :] = band.astype(dtype, copy=False)
             if progress is not None:
                 progress(min(y, y0 + CHUNK_YX), y)
-        if dest.exists():
-            trash = dest.parent / f".{dest.name}.old-{uuid.uuid4().hex[:8]}"
-            os.replace(dest, trash)
-            os.replace(tmp, dest)
-            shutil.rmtree(trash, ignore_errors=True)
-        else:
-            os.replace(tmp, dest)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     return dest

@@ -12,9 +12,6 @@ replaced only when the caller asks for it.
 from __future__ import annotations
 
 import json
-import os
-import shutil
-import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,6 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ._atomic import atomic_folder
 from .errors import InputError, ResultExistsError
 
 #: Maps of the public contract, in channel order of ``maps.ome.zarr``.
@@ -113,24 +111,11 @@ class RhythmResult:
             raise ResultExistsError(
                 f"{str(dest)!r} already exists; nothing was written. Choose another output folder, "
                 "or pass overwrite=True (--overwrite on the command line) to replace it.")
-        dest.parent.mkdir(parents=True, exist_ok=True)
-        tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
-        try:
-            tmp.mkdir()
+        with atomic_folder(dest, overwrite=overwrite) as tmp:
             self._write_into(tmp)
             for writer in (extra_files or {}).values():
                 writer(tmp)
             _write_json(tmp / RUN_FILE, self._run_record())  # last: marks the folder complete
-            if dest.exists():
-                trash = dest.parent / f".{dest.name}.old-{uuid.uuid4().hex[:8]}"
-                os.replace(dest, trash)
-                os.replace(tmp, dest)
-                shutil.rmtree(trash, ignore_errors=True)
-            else:
-                os.replace(tmp, dest)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
         return dest
 
     def _run_record(self) -> dict[str, Any]:

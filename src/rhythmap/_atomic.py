@@ -1,0 +1,45 @@
+"""Folders that appear complete or not at all.
+
+Everything rhythmap writes as a folder (a result, a converted stack) is built
+in a hidden sibling and renamed into place when complete; an existing folder
+is replaced only when the caller asked for it, and only after the new one is
+whole.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import uuid
+from contextlib import contextmanager
+from pathlib import Path
+
+
+@contextmanager
+def atomic_folder(dest, *, overwrite: bool = False, create: bool = True):
+    """Yield a temporary path beside ``dest``; rename it to ``dest`` when the block ends without error.
+
+    ``create=False`` yields a path that does not exist yet (for writers that
+    create it themselves). On error the temporary folder is removed and
+    ``dest`` is left as it was. The caller checks ``overwrite`` policy first;
+    here an existing ``dest`` is replaced only with ``overwrite=True``.
+    """
+    dest = Path(dest)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
+    try:
+        if create:
+            tmp.mkdir()
+        yield tmp
+        if dest.exists():
+            if not overwrite:
+                raise FileExistsError(f"{dest} appeared while it was being written")
+            trash = dest.parent / f".{dest.name}.old-{uuid.uuid4().hex[:8]}"
+            os.replace(dest, trash)
+            os.replace(tmp, dest)
+            shutil.rmtree(trash, ignore_errors=True)
+        else:
+            os.replace(tmp, dest)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
