@@ -69,7 +69,7 @@ class TilePlan:
 
 
 def plan_tiles(shape, input_chunks, *, memory_budget_mb: float, halo: int,
-               n_parallel: int | None = None) -> TilePlan:
+               n_parallel: int | None = None, min_tiles: int = 1) -> TilePlan:
     """Choose a tile shape (ty, tx) from a memory budget and the input's chunks.
 
     The budget is shared by the tiles analysed at once (one per worker
@@ -100,11 +100,32 @@ def plan_tiles(shape, input_chunks, *, memory_budget_mb: float, halo: int,
             ty = max(1, max_px // tx)
         else:
             tx = max(1, max_px // ty)
+    # Enough tiles to keep every worker busy (a cluster has more threads than the budget assumes).
+    while math.ceil(y / ty) * math.ceil(x / tx) < min_tiles and max(ty, tx) > 2 * (halo + 8):
+        if ty >= tx:
+            ty = math.ceil(ty / 2)
+        else:
+            tx = math.ceil(tx / 2)
     ty, tx = max(ty, halo + 1, 1), max(tx, halo + 1, 1)
     chunks = (_split(y, ty), _split(x, tx))
     aligned = full_t and all(len(set(c)) <= 2 for c in input_chunks[1:]) and (ty % cy == 0 or cy % ty == 0) \
         and (tx % cx == 0 or cx % tx == 0)
     return TilePlan((ty, tx), chunks, halo, len(chunks[0]) * len(chunks[1]), aligned)
+
+
+def _parallelism() -> tuple[int, int]:
+    """(tiles analysed at once in one process, threads in all): from the active
+    dask.distributed client when there is one, else this machine's cores."""
+    try:
+        from distributed import default_client
+
+        threads = default_client().nthreads()
+        if threads:
+            return max(threads.values()), sum(threads.values())
+    except (ImportError, ValueError):
+        pass
+    n = max(1, os.cpu_count() or 1)
+    return n, n
 
 
 def _split(n, size):
@@ -307,8 +328,9 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     if halo and (y <= 2 * halo or x <= 2 * halo):
         raise InputError(f"pooling_radius_px={halo} is too large for frames of {y} x {x} pixels; "
                          f"use at most {max(0, (min(y, x) - 1) // 2)}.")
+    n_parallel, total_threads = _parallelism()
     tiles_plan = plan_tiles(stack.data.shape, stack.data.chunks, memory_budget_mb=opts["memory_budget_mb"],
-                            halo=halo)
+                            halo=halo, n_parallel=n_parallel, min_tiles=2 * total_threads)
     if not tiles_plan.aligned and stack.data.nbytes > opts["memory_budget_mb"] * 2**20:
         warnings.warn(
             f"{stack.source}: the input's chunks do not hold the whole time axis {stack.data.chunks[0][:3]}..., "
