@@ -178,3 +178,25 @@ def region_table(regions, maps: dict, references: dict, *, pixel_size_um=None, p
             "origin_x_px": float(origin[1]),
         })
     return pd.DataFrame(rows, columns=list(TABLE_COLUMNS))
+
+
+def region_mean_trace(frames, regions, label: int) -> np.ndarray:
+    """(T,) float32 mean of ``frames`` (T, Y, X; numpy or dask) over the pixels where ``regions == label``.
+
+    Only the region's bounding box is read from a lazy stack.
+
+    Examples
+    --------
+    >>> f = np.arange(24.0).reshape(2, 3, 4); lab = np.zeros((3, 4), int); lab[1, 1:3] = 1
+    >>> region_mean_trace(f, lab, 1).tolist()
+    [5.5, 17.5]
+    """
+    from .errors import InputError
+
+    mask = np.asarray(regions) == int(label)
+    if not mask.any():
+        raise InputError(f"region {label} has no pixels in this result.")
+    ys, xs = np.nonzero(mask)
+    y0, y1, x0, x1 = ys.min(), ys.max() + 1, xs.min(), xs.max() + 1
+    box = np.asarray(frames[:, y0:y1, x0:x1])
+    return box[:, mask[y0:y1, x0:x1]].mean(axis=1, dtype=np.float32)

@@ -297,3 +297,28 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> 
         "detected": detected.astype(np.float32),
         "constant": constant.astype(np.float32),
     }
+
+
+def periodogram(traces, plan: SpectralPlan, trend_basis=None) -> tuple[np.ndarray, np.ndarray]:
+    """The Hann-windowed periodogram the maps are read from: (freq_hz (F,), power (F, n)).
+
+    Same window and (with ``trend_basis``) the same trend removal as
+    :func:`spectral_maps`; power in squared input units (arbitrary scale).
+
+    Examples
+    --------
+    >>> t = np.arange(400) * 0.05
+    >>> f, p = periodogram(np.sin(2 * np.pi * 1.5 * t)[:, None], plan_spectrum(400, 0.05, (30, 180)))
+    >>> float(f[np.argmax(p[:, 0])])
+    1.5
+    """
+    x = as_float(traces)
+    if x.ndim == 1:
+        x = x[:, None]
+    w = hann_window(plan.n_frames)
+    spec = scipy.fft.rfft(x * w[:, None], axis=0)
+    if trend_basis is not None:
+        q = as_float(trend_basis)
+        spec -= scipy.fft.rfft(q * w[:, None], axis=0) @ (q.T @ x)
+    freqs = np.arange(spec.shape[0]) * plan.bin_hz
+    return freqs, (spec.real ** 2 + spec.imag ** 2).astype(np.float32)

@@ -1,33 +1,26 @@
-"""Thin glue for the region inspector over the engine's kernels.
+"""Thin glue for the region inspector: calls into the engine's kernels.
 
-The engine has no public helper yet for one region's mean trace and its
-spectrum (see the plugin's report: ``rhythmap.engine.region_trace`` and
-``rhythmap.spectral.periodogram`` are wanted). Until then these two functions
-do it here, using only :mod:`rhythmap.preprocess` and :mod:`rhythmap.spectral`
-for the signal processing, so the inspector shows what the engine computes.
+A region's mean trace comes from :func:`rhythmap.regions.region_mean_trace`,
+its periodogram and peak from :mod:`rhythmap.spectral` with the analysis's own
+plan and trend basis, so the inspector shows what the engine computed.
 """
 
 from __future__ import annotations
 
 import numpy as np
-import scipy.fft
 
 from rhythmap import preprocess, spectral
+from rhythmap import regions as regions_mod
+from rhythmap.errors import InputError
 from rhythmap.options import validate_options, validate_rate_range
 
 
 def region_mean_trace(frames, regions, label: int) -> np.ndarray:
-    """(T,) float32 mean of ``frames`` (T, Y, X; numpy or dask) over the pixels where ``regions == label``.
-
-    Only the region's bounding box is read from a lazy stack.
-    """
-    mask = np.asarray(regions) == int(label)
-    if not mask.any():
-        raise ValueError(f"region {label} has no pixels in this result.")
-    ys, xs = np.nonzero(mask)
-    y0, y1, x0, x1 = ys.min(), ys.max() + 1, xs.min(), xs.max() + 1
-    box = np.asarray(frames[:, y0:y1, x0:x1])
-    return box[:, mask[y0:y1, x0:x1]].mean(axis=1, dtype=np.float32)
+    """(T,) mean trace of one region (see :func:`rhythmap.regions.region_mean_trace`)."""
+    try:
+        return regions_mod.region_mean_trace(frames, regions, label)
+    except InputError as exc:
+        raise ValueError(str(exc)) from None
 
 
 def region_spectrum(trace, frame_interval_s: float, rate_range_bpm, options: dict | None = None) -> dict:
@@ -52,10 +45,8 @@ def region_spectrum(trace, frame_interval_s: float, rate_range_bpm, options: dic
                                   min_cycles=opts["min_cycles"],
                                   trend_cutoff_fraction=opts["trend_cutoff_fraction"])
     basis = preprocess.trend_basis(n, frame_interval_s, opts["trend_cutoff_fraction"] * lo / 60.0)
-    detrended = preprocess.detrend(x, basis)
-    peak = spectral.spectral_maps(detrended, plan)
-    spec = scipy.fft.rfft(detrended[:, 0] * spectral.hann_window(n))
-    return {"rate_bpm_axis": np.arange(spec.size) * plan.bin_hz * 60.0,
-            "power": (spec.real ** 2 + spec.imag ** 2).astype(np.float32),
+    peak = spectral.spectral_maps(x, plan, trend_basis=basis)
+    freqs, power = spectral.periodogram(x, plan, trend_basis=basis)
+    return {"rate_bpm_axis": freqs * 60.0, "power": power[:, 0],
             "band_bpm": (lo, hi), "peak_rate_bpm": float(peak["rate_bpm"][0]),
             "peak_score": float(peak["peak_score"][0]), "detected": bool(peak["detected"][0])}
