@@ -26,7 +26,6 @@ from typing import Any, Callable, Iterator
 import dask
 import dask.array as da
 import numpy as np
-import scipy.sparse
 
 from . import phase as phase_mod
 from . import presets, preprocess, propagation, regions as regions_mod, rhythm, spectral
@@ -203,23 +202,35 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     out = spectral.spectral_maps(traces, plan, trend_basis=basis)
     maps = np.stack([out[k].reshape(ty, tx) for k in PASS1_KEYS])
     detected = out["detected"].astype(bool)
-    yy, xx = np.divmod(np.arange(ty * tx), tx)
-    by = (yy + y0) // gram_bin
-    bx = (xx + x0) // gram_bin
-    ids = (by.astype(np.int64) << 32) + bx
-    ids = ids[detected]
-    if ids.size:
-        uniq, inv = np.unique(ids, return_inverse=True)
-        # sum the detected traces of each bin as one sparse product (np.add.at is slow)
-        member = scipy.sparse.csr_matrix((np.ones(inv.size, np.float32), (inv, np.arange(inv.size))),
-                                         shape=(uniq.size, inv.size))
-        sums = np.ascontiguousarray((member @ traces[:, detected].T).T, dtype=np.float32)
-        counts = np.bincount(inv, minlength=uniq.size)
-    else:
-        uniq = np.zeros(0, np.int64)
-        sums = np.zeros((traces.shape[0], 0), np.float32)
-        counts = np.zeros(0, np.int64)
+    uniq, sums, counts = _bin_detected(traces, detected.reshape(ty, tx), y0, x0, gram_bin)
     return {"y0": y0, "x0": x0, "maps": maps, "bins": uniq, "bin_sums": sums, "bin_counts": counts}
+
+
+def _bin_detected(traces, detected, y0, x0, b):
+    """Sums of the detected traces over the global b x b bins that a tile touches.
+
+    Bins are laid on the whole image (bin (i, j) covers rows i*b.. and columns
+    j*b..), so a bin cut by a tile edge is completed by the neighbouring tile
+    when the driver adds the tiles' sums. Returns (bin ids, (T, n) sums, counts)
+    for the bins holding at least one detected pixel.
+    """
+    t = traces.shape[0]
+    ty, tx = detected.shape
+    oy, ox = y0 % b, x0 % b
+    ny, nx = -(-(oy + ty) // b), -(-(ox + tx) // b)
+    # bin membership of the tile's rows and columns, as 0/1 matrices: the sums
+    # are then two matrix products (BLAS), not slow strided reductions
+    rows = np.zeros((ny, ty), np.float32)
+    rows[(np.arange(ty) + oy) // b, np.arange(ty)] = 1
+    cols = np.zeros((tx, nx), np.float32)
+    cols[np.arange(tx), (np.arange(tx) + ox) // b] = 1
+    masked = (traces * detected.reshape(1, -1)).reshape(t, ty, tx)
+    sums = np.matmul(rows, masked @ cols).reshape(t, ny * nx)
+    counts = (rows @ detected.astype(np.float32) @ cols).ravel().round().astype(np.int64)
+    by, bx = np.divmod(np.arange(ny * nx), nx)
+    ids = ((by + y0 // b).astype(np.int64) << 32) + (bx + x0 // b)
+    keep = counts > 0
+    return ids[keep], np.ascontiguousarray(sums[:, keep]), counts[keep]
 
 
 PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant")
