@@ -244,14 +244,21 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     (largest) region's reference, and no phase. The lock-in bases have the
     trend components projected out, so B x equals B times the detrended x.
     """
-    traces, (ty, tx) = _pooled(block, halo)
+    t, hy, hx = block.shape
+    ty, tx = hy - 2 * halo, hx - 2 * halo
+    raw = np.asarray(block).reshape(t, hy * hx)
     lab = labels.ravel()
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
     for label in np.unique(lab).tolist():
         sel = lab == label
         ref_label = label if label in lockin_bases else dominant
-        ph, c, _ = phase_mod.lockin(traces[:, sel], lockin_bases[ref_label])
+        basis = lockin_bases[ref_label]
+        # Lock-in is linear in the trace: project every pixel (halo included),
+        # then pool the few projected rows instead of every frame.
+        proj = (basis @ raw.astype(np.float32, copy=False)).reshape(-1, hy, hx)
+        pooled = preprocess.box_pool(proj, halo).reshape(basis.shape[0], ty * tx)
+        ph, c, _ = phase_mod.lockin_from_projection(pooled[:, sel], basis)
         coh[sel] = c
         if label in lockin_bases:
             phase[sel] = ph

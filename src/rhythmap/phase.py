@@ -229,7 +229,17 @@ def lockin(traces, basis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     b = as_float(basis)
     if b.shape[1] != x.shape[0]:
         raise InputError(f"lock-in basis has {b.shape[1]} frames but traces have {x.shape[0]}.")
-    proj = b @ x  # (2 + 2K, n)
+    return lockin_from_projection(b @ x, basis)
+
+
+def lockin_from_projection(proj, basis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`lockin` from the products ``basis @ traces`` (2 + 2K, n) already made.
+
+    The products are linear in the traces, so the lock-in of a spatially
+    pooled trace is the pooled products: the engine pools these few rows
+    instead of every frame.
+    """
+    b = as_float(basis)
     z_re, z_im = proj[0], -proj[1]
     re, im = proj[2::2], -proj[3::2]
     phase = np.mod(-np.arctan2(z_im, z_re), TWO_PI).astype(np.float32)
