@@ -25,8 +25,6 @@ def saved(tmp_path_factory, well):
 
 def test_report_png_has_content_in_every_panel(saved):
     res, out = saved
-    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401  (the report's backend)
-
     img = np.asarray(Image.open(out / "report.png").convert("L"), float)
     assert img.shape[0] > 800 and img.shape[1] > 1000
     # split the 3 x 3 layout (last row: the table) and require ink in every cell

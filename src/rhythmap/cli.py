@@ -13,10 +13,8 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
-
 from . import __version__
-from .errors import InputError, RhythmapError
+from .errors import RhythmapError
 from .options import DEFAULT_RATE_RANGE_BPM, OPTIONS
 
 DEFAULT_RATE_RANGE = DEFAULT_RATE_RANGE_BPM  # the runner's name for it

@@ -33,7 +33,7 @@ from ._version import __version__
 from .errors import CancelledError, InputError, RhythmapError
 from .options import DEFAULT_RATE_RANGE_BPM, validate_options, validate_rate_range
 from .reference import reference_from_theta
-from .result import MAP_NAMES, RhythmResult
+from .result import RhythmResult
 from .stack import Stack, open_stack
 
 #: Bytes of working memory per pixel per frame while a tile is analysed: the

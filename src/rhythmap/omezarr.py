@@ -10,8 +10,6 @@ images with the whole time axis in each chunk.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import zarr
 
