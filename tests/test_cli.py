@@ -57,19 +57,24 @@ def test_options_from_the_shared_table(tmp_path, sample_tif):
     (["analyze", "{sample}", "-o", "OUT", "--pooling-radius-px", "abc"], "pooling_radius_px"),
     (["analyze", "{nometa}", "-o", "OUT"], "--frame-interval"),
     (["analyze", "{sample}", "-o", "{existing}"], "already exists"),
+    (["analyze", "{sample}", "-o", "{existing}", "--overwrite"], "not a rhythmap result folder"),
+    (["analyze", "{sample}", "-o", "{sampledir}", "--overwrite"], "holds the input"),
+    (["analyze", "{sample}", "-o", "/proc/no/such/place"], "Nothing was left half-written"),
 ])
 def test_bad_input_exits_2_without_traceback(tmp_path, sample_tif, args, match):
     nometa = tmp_path / "nometa.tif"
     tifffile.imwrite(nometa, np.zeros((20, 8, 8), np.uint16))
     existing = tmp_path / "existing"
     existing.mkdir()
-    subs = {"sample": sample_tif, "nometa": nometa, "existing": existing}
+    (existing / "precious.txt").write_text("keep me")
+    subs = {"sample": sample_tif, "nometa": nometa, "existing": existing, "sampledir": sample_tif.parent}
     args = [a.format(**subs).replace("OUT", str(tmp_path / "out")) for a in args]
     p = run(*args)
     assert p.returncode == 2
     assert "Traceback" not in p.stderr
     assert match in p.stderr
     assert not (tmp_path / "out").exists()
+    assert (existing / "precious.txt").exists() and sample_tif.exists()
 
 
 def test_demo_in_a_clean_folder(tmp_path):

@@ -58,9 +58,29 @@ def test_existing_result_is_never_overwritten_silently(tmp_path, result):
     with pytest.raises(ResultExistsError, match="overwrite"):
         result.save(out)
     assert (out / "keep.txt").read_text() == "mine"
-    result.save(out, overwrite=True)
-    assert not (out / "keep.txt").exists() and is_complete(out)
+    # --overwrite replaces an earlier result, never a folder of the user's
+    with pytest.raises(ResultExistsError, match="not a rhythmap result folder"):
+        result.save(out, overwrite=True)
+    assert (out / "keep.txt").read_text() == "mine"
+    earlier = tmp_path / "earlier"
+    result.save(earlier)
+    (earlier / "marker").write_text("old")
+    result.save(earlier, overwrite=True)
+    assert not (earlier / "marker").exists() and is_complete(earlier)
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
+
+
+def test_output_folder_holding_the_input_is_refused(tmp_path, well):
+    import tifffile
+
+    data = tmp_path / "data"
+    data.mkdir()
+    tifffile.imwrite(data / "s.tif", well.frames, imagej=True, metadata={"axes": "TYX", "finterval": 0.04})
+    st = rhythmap.open_stack(data / "s.tif")
+    res = rhythmap.analyze(st, (20, 150), maps_only=True)
+    with pytest.raises(ResultExistsError, match="holds the input"):
+        res.save(data, overwrite=True)
+    assert (data / "s.tif").exists()
 
 
 def test_a_failed_write_leaves_nothing_behind(tmp_path, result):

@@ -15,6 +15,32 @@ from contextlib import contextmanager
 from pathlib import Path
 
 
+def check_replaceable(dest, is_ours, what: str, protect=()) -> Path:
+    """Refuse to replace ``dest`` unless it is one of our own outputs (``is_ours(dest)``) or empty.
+
+    ``protect`` lists paths (inputs) that must not lie inside ``dest``. Returns
+    the resolved destination.
+
+    Raises
+    ------
+    ResultExistsError
+        When replacing ``dest`` would delete something that is not ours.
+    """
+    from .errors import ResultExistsError
+
+    dest = Path(dest).resolve()
+    for p in protect:
+        p = Path(p).resolve()
+        if p == dest or dest in p.parents:
+            raise ResultExistsError(f"the output folder {str(dest)!r} holds the input {str(p)!r}; choose an output "
+                                    "folder outside the data.")
+    if dest.exists() and not (dest.is_dir() and (not any(dest.iterdir()) or is_ours(dest))):
+        raise ResultExistsError(
+            f"{str(dest)!r} exists and is not a {what}; it was left untouched. --overwrite only replaces an "
+            f"earlier {what}: choose another output folder.")
+    return dest
+
+
 @contextmanager
 def atomic_folder(dest, *, overwrite: bool = False, create: bool = True):
     """Yield a temporary path beside ``dest``; rename it to ``dest`` when the block ends without error.
@@ -24,7 +50,7 @@ def atomic_folder(dest, *, overwrite: bool = False, create: bool = True):
     ``dest`` is left as it was. The caller checks ``overwrite`` policy first;
     here an existing ``dest`` is replaced only with ``overwrite=True``.
     """
-    dest = Path(dest)
+    dest = Path(dest).resolve()
     dest.parent.mkdir(parents=True, exist_ok=True)
     tmp = dest.parent / f".{dest.name}.partial-{uuid.uuid4().hex[:8]}"
     try:

@@ -9,12 +9,13 @@ traceback.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 from pathlib import Path
 
 from . import __version__
-from .errors import RhythmapError
+from .errors import InputError, RhythmapError
 from .options import DEFAULT_RATE_RANGE_BPM, OPTIONS
 
 DEFAULT_RATE_RANGE = DEFAULT_RATE_RANGE_BPM  # the runner's name for it
@@ -125,12 +126,20 @@ def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, 
     from .result import ResultExistsError
     from .stack import open_stack
 
-    out = Path(out)
+    out = Path(out).resolve()
     if out.exists() and not overwrite:  # fail before the work, not after it
         raise ResultExistsError(
             f"{str(out)!r} already exists; nothing was written. Choose another folder with -o, or add "
             "--overwrite to replace it.")
     stack = open_stack(stack_path, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
+    from ._atomic import check_replaceable
+    from .result import is_complete
+
+    check_replaceable(out, is_complete, "rhythmap result folder",
+                      protect=[stack.source] if stack.source != "array" else [])
+    parent = next((p for p in [out.parent, *out.parent.parents] if p.exists()), None)
+    if parent is None or not os.access(parent, os.W_OK):
+        raise InputError(f"cannot write {str(out)!r}: {str(parent)!r} is not writable. Choose another -o folder.")
     result = analyze(stack, rate_range_bpm, progress=progress, **(options or {}))
     from .report import report_writers
 
@@ -230,6 +239,10 @@ def main(argv=None) -> int:
                 print(f"wrote {path}")
     except RhythmapError as exc:
         print(f"rhythmap: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # unwritable folder, full disk, unreadable file: the user's to fix
+        print(f"rhythmap: error: {exc.strerror or exc}: {exc.filename or ''}. Nothing was left half-written; "
+              "check the path, its permissions and the free space.", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("rhythmap: interrupted; no partial result was left behind.", file=sys.stderr)

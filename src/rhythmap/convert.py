@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from . import omezarr
-from ._atomic import atomic_folder
+from ._atomic import atomic_folder, check_replaceable
 from .errors import ResultExistsError
 from .stack import Stack, open_stack
 
@@ -51,9 +51,11 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     """
     stack = source if isinstance(source, Stack) else open_stack(
         source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
-    dest = Path(out)
+    dest = Path(out).resolve()
     if dest.exists() and not overwrite:
         raise ResultExistsError(f"{str(dest)!r} already exists; choose another name or add --overwrite.")
+    check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
+                      protect=[stack.source] if stack.source != "array" else [])
     t, y, x = stack.shape
     dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
     with atomic_folder(dest, overwrite=overwrite, create=False) as tmp:

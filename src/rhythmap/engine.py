@@ -90,7 +90,8 @@ def plan_tiles(shape, input_chunks, *, memory_budget_mb: float, halo: int,
             return min(n, side)
         if c <= side:
             return min(n, c * max(1, side // c))
-        return math.ceil(c / math.ceil(c / side))
+        # the largest divisor of the chunk that fits, so tiles never straddle chunks
+        return max(d for d in range(1, side + 1) if c % d == 0)
 
     ty, tx = pick(cy, y), pick(cx, x)
     # Keep the area within budget when one axis is short.
@@ -106,7 +107,7 @@ def plan_tiles(shape, input_chunks, *, memory_budget_mb: float, halo: int,
         else:
             tx = math.ceil(tx / 2)
     ty, tx = max(ty, halo + 1, 1), max(tx, halo + 1, 1)
-    chunks = (_split(y, ty), _split(x, tx))
+    chunks = (_split(y, ty, halo + 1), _split(x, tx, halo + 1))
     aligned = full_t and all(len(set(c)) <= 2 for c in input_chunks[1:]) and (ty % cy == 0 or cy % ty == 0) \
         and (tx % cx == 0 or cx % tx == 0)
     return TilePlan((ty, tx), chunks, halo, len(chunks[0]) * len(chunks[1]), aligned)
@@ -127,9 +128,14 @@ def _parallelism() -> tuple[int, int]:
     return n, n
 
 
-def _split(n, size):
+def _split(n, size, min_last=1):
+    """Cut n into pieces of ``size``; a last piece shorter than ``min_last`` joins the one before
+    (dask's overlap would otherwise regroup the chunks behind the tile offsets' back)."""
     full, rest = divmod(n, size)
-    return tuple([size] * full + ([rest] if rest else []))
+    parts = [size] * full + ([rest] if rest else [])
+    if len(parts) > 1 and parts[-1] < min_last:
+        parts[-2] += parts.pop()
+    return tuple(parts)
 
 
 def _tile_arrays(data: da.Array, plan: TilePlan):
@@ -250,15 +256,17 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     lab = labels.ravel()
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
+    pooled_by_ref: dict = {}
     for label in np.unique(lab).tolist():
         sel = lab == label
         ref_label = label if label in lockin_bases else dominant
         basis = lockin_bases[ref_label]
-        # Lock-in is linear in the trace: project every pixel (halo included),
-        # then pool the few projected rows instead of every frame.
-        proj = (basis @ raw.astype(np.float32, copy=False)).reshape(-1, hy, hx)
-        pooled = preprocess.box_pool(proj, halo).reshape(basis.shape[0], ty * tx)
-        ph, c, _ = phase_mod.lockin_from_projection(pooled[:, sel], basis)
+        if ref_label not in pooled_by_ref:
+            # Lock-in is linear in the trace: project every pixel (halo included),
+            # then pool the few projected rows instead of every frame.
+            proj = (basis @ raw.astype(np.float32, copy=False)).reshape(-1, hy, hx)
+            pooled_by_ref[ref_label] = preprocess.box_pool(proj, halo).reshape(basis.shape[0], ty * tx)
+        ph, c, _ = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], basis)
         coh[sel] = c
         if label in lockin_bases:
             phase[sel] = ph
@@ -398,7 +406,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         jobs = {}
         for label in region_ids:
             cols = bin_region == label
-            if cols.sum() < 2:
+            if cols.sum() < 1:
                 warn.append(f"region {label}: too few pixels for a rhythm reference")
                 continue
             rate = float(np.nanmedian(m["rate_bpm"][labels == label]))

@@ -196,7 +196,9 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
     if t.size > FIT_MAX_POINTS:  # an even subsample is plenty for four parameters
         keep = np.random.default_rng(0).choice(t.size, FIT_MAX_POINTS, replace=False)
         yy, xx, t = yy[keep], xx[keep], t[keep]
-    a = np.column_stack([np.ones_like(t), yy, xx])
+    # centred coordinates: a line of pixels (one coordinate constant) must not lend
+    # the intercept a gradient along the missing direction
+    a = np.column_stack([np.ones_like(t), yy - yy.mean(), xx - xx.mean()])
     coef, *_ = np.linalg.lstsq(a, t, rcond=None)
     plane_rms = float(np.sqrt(np.mean((a @ coef - t) ** 2)))
     gy, gx = coef[1] / scale, coef[2] / scale

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._atomic import atomic_folder
+from ._atomic import atomic_folder, check_replaceable
 from .errors import InputError, ResultExistsError
 
 #: Maps of the public contract, in channel order of ``maps.ome.zarr``.
@@ -106,11 +106,14 @@ class RhythmResult:
         ResultExistsError
             If ``path`` exists and ``overwrite`` is False.
         """
-        dest = Path(path)
+        dest = Path(path).resolve()
         if dest.exists() and not overwrite:
             raise ResultExistsError(
                 f"{str(dest)!r} already exists; nothing was written. Choose another output folder, "
                 "or pass overwrite=True (--overwrite on the command line) to replace it.")
+        source = self.input.get("identity", {}).get("source")
+        check_replaceable(dest, is_complete, "rhythmap result folder",
+                          protect=[source] if source and source != "array" else [])
         with atomic_folder(dest, overwrite=overwrite) as tmp:
             self._write_into(tmp)
             for writer in (extra_files or {}).values():

@@ -73,11 +73,10 @@ def region_reference(traces, frame_interval_s: float, rate_bpm: float, *, n_land
     >>> round(ref.rate_mean_bpm, 1), bool(ref.score > 0.9)
     (72.0, True)
     """
-    x = np.asarray(traces, np.float64)
-    t_n = x.shape[0]
+    t_n = np.shape(traces)[0]
     period_frames = 60.0 / rate_bpm / frame_interval_s
     step = decimation_for(t_n, period_frames, max_frames)
-    xs = x[::step]
+    xs = np.asarray(np.asarray(traces)[::step], np.float64)  # decimate before the float64 copy
     dt = frame_interval_s * step
     choice = embedding.window_for_period(period_frames / step)
     gram = frame_gram(xs)
