@@ -93,3 +93,33 @@ def test_unwrap_and_local_gradient_on_a_known_field():
     assert fit["model"] == "point"
     assert fit["speed_um_s"] == pytest.approx(100.0, rel=1e-3)
     assert np.hypot(fit["origin_yx"][0] - 5, fit["origin_yx"][1] - 7) < 0.1
+
+
+def test_a_rhythm_nested_inside_another_keeps_its_own_region():
+    rate = np.full((30, 30), 60.0)
+    rate[10:20, 10:20] = 90.0  # a pacemaker island beating faster
+    lab = regions.segment(rate, np.isfinite(rate), bin_bpm=2.0, min_area_px=10)
+    assert lab.max() == 2
+    assert len(np.unique(lab[10:20, 10:20])) == 1 and lab[15, 15] != lab[0, 0]
+
+
+def test_relabel_drops_small_regions_and_closes_gaps():
+    lab = np.zeros((10, 10), np.int32)
+    lab[:5] = 3
+    lab[6:, :2] = 1   # 8 px
+    lab[9, 9] = 2     # 1 px
+    out = regions.relabel(lab, 5)
+    assert sorted(np.unique(out).tolist()) == [0, 1, 2]
+    assert (out[:5] == 1).all() and (out[6:, :2] == 2).all() and out[9, 9] == 0
+
+
+def test_line_of_pixels_gives_the_right_direction():
+    """A wave along a one-pixel-wide line: the plane fit must not invent a gradient across it."""
+    yy = np.arange(40.0)
+    act = np.full((40, 40), np.nan)
+    mask = np.zeros((40, 40), bool)
+    mask[:, 20] = True
+    act[:, 20] = yy / 245.0
+    fit = propagation.fit_region(act, mask)
+    assert fit["direction_deg"] == pytest.approx(90.0, abs=0.5)
+    assert fit["speed_um_s"] == pytest.approx(245.0, rel=1e-3)

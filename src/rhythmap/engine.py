@@ -391,7 +391,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     labels = regions_mod.segment(m["rate_bpm"], detected, bin_bpm=60.0 * plan.bin_hz,
                                  min_area_px=opts["min_area_px"])
     if halo:
-        labels = regions_mod.trim_pooling_rim(labels, m["amplitude"], halo)
+        labels = regions_mod.relabel(regions_mod.trim_pooling_rim(labels, m["amplitude"], halo),
+                                     opts["min_area_px"])
     coherence = np.full((y, x), np.nan, np.float32)
     phase_rad = np.full((y, x), np.nan, np.float32)
     delay_s = np.full((y, x), np.nan, np.float32)

@@ -219,7 +219,8 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
         point_rms = float(np.sqrt(np.mean(resid(fit.x) ** 2)))
     except (ValueError, np.linalg.LinAlgError):
         return plane
-    if point_rms < 0.8 * plane_rms and slow > 0:
+    plane_exact = plane_rms <= 1e-6 * (float(t.max() - t.min()) + 1e-12)
+    if point_rms < 0.8 * plane_rms and slow > 0 and not plane_exact:
         return {"model": "point", "speed_um_s": float(scale / slow), "direction_deg": np.nan,
                 "origin_yx": (float(y0), float(x0)), "rms_s": point_rms}
     return plane

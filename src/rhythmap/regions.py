@@ -77,11 +77,24 @@ def segment(rate_bpm, detected, *, bin_bpm: float, min_area_px: int) -> np.ndarr
     ids, counts = np.unique(comp[comp >= 0], return_counts=True)
     big = ids[counts >= min_area_px]
     order = big[np.argsort(-counts[counts >= min_area_px], kind="stable")]
+    kept = np.isin(comp, order)
     labels = np.zeros((h, w), np.int32)
     for new, old in enumerate(order, start=1):
         filled = ndi.binary_fill_holes(comp == old)
-        labels[filled & (labels == 0)] = new
+        # fill holes, but never over another kept rhythm nested inside this one
+        labels[filled & (labels == 0) & ~(kept & (comp != old))] = new
     return labels
+
+
+def relabel(labels, min_area_px: int) -> np.ndarray:
+    """Drop regions under ``min_area_px`` and number the rest 1..n by decreasing area, without gaps."""
+    lab = np.asarray(labels)
+    ids, counts = np.unique(lab[lab > 0], return_counts=True)
+    keep = counts >= min_area_px
+    order = ids[keep][np.argsort(-counts[keep], kind="stable")]
+    lut = np.zeros(int(lab.max()) + 1 if lab.size else 1, np.int32)
+    lut[order] = np.arange(1, order.size + 1, dtype=np.int32)
+    return lut[lab]
 
 
 def trim_pooling_rim(labels, amplitude, radius: int, *, ratio: float = 0.5) -> np.ndarray:
