@@ -239,7 +239,7 @@ def _bin_detected(traces, detected, y0, x0, b):
     return ids[keep], np.ascontiguousarray(sums[:, keep]), counts[keep]
 
 
-PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant")
+PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")
 
 
 @_kernel
@@ -475,7 +475,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], region_period_s(ref), 0.0)
         timings["phase_pass_s"] = time.perf_counter() - t_phase
 
-    extra = {"peak_score": m["peak_score"]}
+    extra = {"peak_score": m["peak_score"], "mean_intensity": m["mean"]}
     if opts["tile_loop_map"] and not opts["maps_only"] and labels.max() > 0:
         extra["loop_score_tiles"] = extra_loop
     prop: dict = {}
@@ -504,7 +504,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         delay_s=delay_s, regions=labels, region_table=table, references=references,
         frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
         parameters={"rate_range_bpm": list(lo_hi), **opts, "warnings": warn,
-                    "gram_bin_px": gram_bin, "tile_shape_px": list(tiles_plan.tile_shape)},
+                    "gram_bin_px": gram_bin, "tile_shape_px": list(tiles_plan.tile_shape),
+                    "velocity_unit": "um/s" if stack.pixel_size_um else "px/s"},
         input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
         timings={**timings, "total_s": time.perf_counter() - t_start},
         extra_maps=extra,

@@ -24,7 +24,7 @@ PREVIEW_MAX_FRAMES = 300
 REPORT_COLUMNS = [("region", "region", "{:d}"), ("area_px", "area px", "{:d}"),
                   ("rate_median_bpm", "rate bpm", "{:.1f}"), ("beats", "beats", "{:d}"),
                   ("beat_interval_cv", "interval CV", "{:.3f}"), ("loop_score", "loop", "{:.2f}"),
-                  ("coherence_mean", "coherence", "{:.2f}"), ("conduction_velocity_um_s", "CV µm/s", "{:.3g}"),
+                  ("coherence_mean", "coherence", "{:.2f}"), ("conduction_velocity_um_s", "CV {unit}", "{:.3g}"),
                   ("wave_direction_deg", "dir °", "{:.0f}"), ("origin_y_px", "origin y", "{:.1f}"),
                   ("origin_x_px", "origin x", "{:.1f}")]
 
@@ -66,7 +66,9 @@ def render_report(result, path, stack=None) -> Path:
     extent = (0, w * (ps or 1), h * (ps or 1), 0)
     labels = result.regions
 
-    mean = mean_image(stack)
+    mean = result.extra_maps.get("mean_intensity")  # from the first pass: no extra read
+    if mean is None:
+        mean = mean_image(stack)
     ax_mean.imshow(mean if mean is not None else np.zeros((h, w)), cmap="gray", extent=extent)
     _outline(ax_mean, labels, ps)
     ax_mean.set_title("mean image, regions outlined")
@@ -147,7 +149,9 @@ def render_report(result, path, stack=None) -> Path:
     if table is not None and len(table):
         cols = [c for c in REPORT_COLUMNS if c[0] in table.columns]
         cells = [[_fmt(fmt, row[c]) for c, _, fmt in cols] for _, row in table.head(12).iterrows()]
-        tab = ax_table.table(cellText=cells, colLabels=[name for _, name, _ in cols], loc="upper center")
+        vunit = "µm/s" if result.pixel_size_um else "px/s"
+        tab = ax_table.table(cellText=cells, colLabels=[name.format(unit=vunit) for _, name, _ in cols],
+                             loc="upper center")
         tab.auto_set_font_size(False)
         tab.set_fontsize(9)
         tab.scale(1, 1.3)

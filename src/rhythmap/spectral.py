@@ -170,7 +170,8 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
         rhythm's fundamental; NaN where not detected), ``periodicity`` in
         [0, 1] (defined for every trace), ``peak_score`` (peak power over the
         white-noise level), ``detected`` (0/1) and ``constant`` (1 where the
-        trace does not change at all; never detected).
+        trace does not change at all; never detected) and ``mean`` (the
+        Hann-weighted mean intensity, for display).
 
     Notes
     -----
@@ -202,7 +203,7 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
         raise InputError(f"traces must be (T={plan.n_frames}, n); got shape {x.shape}.")
     n = x.shape[1]
     out = {k: np.full(n, np.nan, np.float32) for k in
-           ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant")}
+           ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")}
     w = hann_window(plan.n_frames)
     trend = None
     if trend_basis is not None:
@@ -300,6 +301,7 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> 
         "peak_score": score,
         "detected": detected.astype(np.float32),
         "constant": constant.astype(np.float32),
+        "mean": (dc / float(w.sum())).astype(np.float32),
     }
 
 
