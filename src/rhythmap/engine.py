@@ -403,6 +403,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         region_ids = [int(v) for v in range(1, labels.max() + 1)]
         yield Progress(0, len(region_ids), "references")
         traces, bin_region = _gather_bins(results, labels, gram_bin)
+        for r in results:  # the gathered copy is all that is needed from here on
+            r.pop("bin_sums", None)
         traces = preprocess.detrend(traces, basis)
         jobs = {}
         for label in region_ids:
