@@ -50,7 +50,7 @@ import pandas as pd
 from . import __version__, analyze, open_stack
 from .errors import InputError, RhythmapError
 from .options import validate_options, validate_rate_range
-from .result import BEATS_FILE, MAPS_FILE, REFERENCES_FILE, REGIONS_FILE, REPORT_FILE, RUN_FILE, is_complete
+from .result import RESULT_FILES, RUN_FILE, is_complete
 
 #: Written into ``run.json`` (``input.batch.runner``) so a rerun knows which folders it may replace.
 RUNNER_TAG = "rhythmap.batch/1"
@@ -62,7 +62,7 @@ FAILURES_CSV = "failures.csv"
 LOCK_FILE = ".rhythmap-batch.lock"
 
 #: Entries a result folder may hold; a folder without run.json holding only these is a partial result.
-RESULT_ENTRIES = {MAPS_FILE, REGIONS_FILE, BEATS_FILE, REFERENCES_FILE, REPORT_FILE, RUN_FILE}
+RESULT_ENTRIES = RESULT_FILES  # the files a result folder may hold (shared with RhythmResult.save)
 
 #: Per-stack overrides a manifest row may carry, with their types (as for open_stack).
 OVERRIDES = {"frame_interval_s": float, "pixel_size_um": float, "channel": int, "plane": int}

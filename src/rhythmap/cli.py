@@ -133,9 +133,9 @@ def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, 
             "--overwrite to replace it.")
     stack = open_stack(stack_path, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
     from ._atomic import check_replaceable
-    from .result import is_complete
+    from .result import is_result_folder
 
-    check_replaceable(out, is_complete, "rhythmap result folder",
+    check_replaceable(out, is_result_folder, "rhythmap result folder",
                       protect=[stack.source] if stack.source != "array" else [])
     parent = next((p for p in [out.parent, *out.parent.parents] if p.exists()), None)
     if parent is None or not os.access(parent, os.W_OK):

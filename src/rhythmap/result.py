@@ -112,7 +112,7 @@ class RhythmResult:
                 f"{str(dest)!r} already exists; nothing was written. Choose another output folder, "
                 "or pass overwrite=True (--overwrite on the command line) to replace it.")
         source = self.input.get("identity", {}).get("source")
-        check_replaceable(dest, is_complete, "rhythmap result folder",
+        check_replaceable(dest, is_result_folder, "rhythmap result folder",
                           protect=[source] if source and source != "array" else [])
         with atomic_folder(dest, overwrite=overwrite) as tmp:
             self._write_into(tmp)
@@ -166,6 +166,22 @@ def _json_default(o):
     if isinstance(o, Path):
         return str(o)
     raise TypeError(f"cannot store {type(o).__name__} in JSON")
+
+
+RESULT_FILES = frozenset({MAPS_FILE, REGIONS_FILE, BEATS_FILE, REFERENCES_FILE, REPORT_FILE, RUN_FILE,
+                          "preview_magnified.tif"})
+
+
+def is_result_folder(path) -> bool:
+    """True for a rhythmap result folder, complete or torn: it holds nothing but result files."""
+    p = Path(path)
+    if is_complete(p):
+        return True
+    try:
+        names = {c.name for c in p.iterdir()}
+    except OSError:
+        return False
+    return bool(names) and names <= RESULT_FILES
 
 
 def is_complete(path) -> bool:
