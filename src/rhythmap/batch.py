@@ -50,7 +50,7 @@ import pandas as pd
 from . import __version__, analyze, open_stack
 from .errors import InputError, RhythmapError
 from .options import validate_options, validate_rate_range
-from .result import RESULT_FILES, RUN_FILE, is_complete
+from .result import REGIONS_FILE, RESULT_FILES, RUN_FILE, is_complete
 
 #: Written into ``run.json`` (``input.batch.runner``) so a rerun knows which folders it may replace.
 RUNNER_TAG = "rhythmap.batch/1"
