@@ -413,6 +413,11 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
                 warn.append(f"region {label}: too few pixels for a rhythm reference")
                 continue
             rate = float(np.nanmedian(m["rate_bpm"][labels == label]))
+            step = rhythm.decimation_for(t, 60.0 / rate / stack.frame_interval_s, opts["max_frames_topology"])
+            if t // step > 2 * opts["max_frames_topology"]:
+                warn.append(f"region {label}: the period ({60.0 / rate / stack.frame_interval_s:.1f} frames) is too "
+                            f"short to decimate {t} frames for persistence; the step used {t // step} windows, "
+                            "and its memory grows with their square. Analyse shorter segments if it runs out.")
             jobs[label] = (rhythm.region_reference, (traces[:, cols], stack.frame_interval_s, rate),
                            {"n_landmarks": opts["n_landmarks"], "max_frames": opts["max_frames_topology"]})
         n_done = 0
