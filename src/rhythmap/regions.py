@@ -79,10 +79,14 @@ def segment(rate_bpm, detected, *, bin_bpm: float, min_area_px: int) -> np.ndarr
     order = big[np.argsort(-counts[counts >= min_area_px], kind="stable")]
     kept = np.isin(comp, order)
     labels = np.zeros((h, w), np.int32)
+    # work inside each component's bounding box: many small regions on a large frame stay cheap
+    boxes = ndi.find_objects(np.where(comp >= 0, comp + 1, 0))
     for new, old in enumerate(order, start=1):
-        filled = ndi.binary_fill_holes(comp == old)
+        box = boxes[old]
+        filled = ndi.binary_fill_holes(comp[box] == old)
         # fill holes, but never over another kept rhythm nested inside this one
-        labels[filled & (labels == 0) & ~(kept & (comp != old))] = new
+        sub = labels[box]
+        sub[filled & (sub == 0) & ~(kept[box] & (comp[box] != old))] = new
     return labels
 
 
@@ -124,9 +128,14 @@ def trim_pooling_rim(labels, amplitude, radius: int, *, ratio: float = 0.5) -> n
         if not rim.any():
             break
         drop = np.zeros_like(rim)
+        boxes = ndi.find_objects(lab)
         for label in np.unique(lab[rim]).tolist():
-            own_max = ndi.maximum_filter(np.where(lab == label, amp, 0.0), size=size)
-            drop |= rim & (lab == label) & (amp < ratio * own_max)
+            sl = boxes[label - 1]
+            # the box grown by the pooling radius (the max filter looks that far)
+            box = tuple(slice(max(0, s.start - radius), s.stop + radius) for s in sl)
+            own = lab[box] == label
+            own_max = ndi.maximum_filter(np.where(own, amp[box], 0.0), size=size)
+            drop[box] |= rim[box] & own & (amp[box] < ratio * own_max)
         if not drop.any():
             break
         lab[drop] = 0
