@@ -53,7 +53,8 @@ OPTIONS: tuple[Option, ...] = (
            "Slow trends (bleaching, drift) below this fraction of the lowest rate are removed.",
            lambda v: 0 < v <= 0.9, "a number in (0, 0.9]"),
     Option("memory_budget_mb", 512, float,
-           "Memory (MB) one tile of the stack may use while it is analysed; sets the tile size.",
+           "Working memory (MB) shared by the tiles analysed at the same time (one per thread); sets the "
+           "tile size.",
            lambda v: 16 <= v <= 1e6, "a number of megabytes >= 16"),
     Option("min_cycles", 3.0, float,
            "The recording must span at least this many cycles of the slowest rate in the band.",
