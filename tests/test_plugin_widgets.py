@@ -113,7 +113,7 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
 
 def test_event_loop_runs_during_a_run_and_cancel_adds_nothing(panel, qtbot):
     viewer = panel.viewer
-    add_scene(viewer, big_scene(2), name="big")
+    add_scene(viewer, big_scene(3), name="big")  # runs for a few seconds even on a quiet machine
     # Many small tiles: many yields. Fewer landmarks than the default keep each ripser call
     # (which holds the GIL inside the engine) short; with the default 300 landmarks one call
     # alone can hold the event loop for ~0.3-0.5 s on these machines (reported to the engine).
