@@ -73,17 +73,26 @@ def region_reference(traces, frame_interval_s: float, rate_bpm: float, *, n_land
     >>> round(ref.rate_mean_bpm, 1), bool(ref.score > 0.9)
     (72.0, True)
     """
+    time_s, dist, choice = window_distances(traces, frame_interval_s, rate_bpm, max_frames=max_frames)
+    return reference_from_distances(time_s, dist, dim=choice.dim, tau=choice.tau,
+                                    n_landmarks=n_landmarks, coeff=coeff)
+
+
+def window_distances(traces, frame_interval_s: float, rate_bpm: float, *, max_frames: int = 1500):
+    """Distances between the centred, unit-normalised sliding windows of some traces.
+
+    Returns ``(time_s, dist, choice)``: the (decimated) frame times, the (N, N)
+    window distances and the :class:`rhythmap.embedding.WindowChoice` used.
+    The shared first half of :func:`region_reference` and
+    :func:`loop_score_of_traces`.
+    """
     t_n = np.shape(traces)[0]
     period_frames = 60.0 / rate_bpm / frame_interval_s
     step = decimation_for(t_n, period_frames, max_frames)
     xs = np.asarray(np.asarray(traces)[::step], np.float64)  # decimate before the float64 copy
-    dt = frame_interval_s * step
     choice = embedding.window_for_period(period_frames / step)
-    gram = frame_gram(xs)
-    d2 = embedding.sliding_window_sqdist(gram, dim=choice.dim, tau=choice.tau, center=True, normalize=True)
-    time_s = np.arange(xs.shape[0]) * dt
-    return reference_from_distances(time_s, np.sqrt(d2), dim=choice.dim, tau=choice.tau,
-                                    n_landmarks=n_landmarks, coeff=coeff)
+    d2 = embedding.sliding_window_sqdist(frame_gram(xs), dim=choice.dim, tau=choice.tau, center=True, normalize=True)
+    return np.arange(xs.shape[0]) * frame_interval_s * step, np.sqrt(d2), choice
 
 
 def loop_score_of_traces(traces, frame_interval_s: float, rate_bpm: float, *, n_landmarks: int = 100,
@@ -95,10 +104,5 @@ def loop_score_of_traces(traces, frame_interval_s: float, rate_bpm: float, *, n_
     """
     from .topology import h1_persistence, loop_score
 
-    x = np.asarray(traces, np.float64)
-    period_frames = 60.0 / rate_bpm / frame_interval_s
-    step = decimation_for(x.shape[0], period_frames, max_frames)
-    xs = x[::step]
-    choice = embedding.window_for_period(period_frames / step)
-    d2 = embedding.sliding_window_sqdist(frame_gram(xs), dim=choice.dim, tau=choice.tau, center=True, normalize=True)
-    return float(loop_score(h1_persistence(np.sqrt(d2), n_landmarks=n_landmarks).diagram))
+    _, dist, _ = window_distances(traces, frame_interval_s, rate_bpm, max_frames=max_frames)
+    return float(loop_score(h1_persistence(dist, n_landmarks=n_landmarks).diagram))

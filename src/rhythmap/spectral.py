@@ -207,10 +207,8 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
     w = hann_window(plan.n_frames)
     trend = None
     if trend_basis is not None:
-        q = as_float(trend_basis)
         k_cut = min(plan.n_bins, plan.band_bins[0] + plan.trend_bins + TREND_LEAK_BINS)
-        q_spec = scipy.fft.rfft(q * w[:, None], axis=0)[:k_cut]
-        trend = (q, np.ascontiguousarray(q_spec.real, np.float32), np.ascontiguousarray(q_spec.imag, np.float32))
+        trend = _trend_spectrum(trend_basis, w, k_cut)
     for start in range(0, n, FFT_BLOCK_COLUMNS):
         sl = slice(start, min(n, start + FFT_BLOCK_COLUMNS))
         block = _spectral_block(x[:, sl], w, plan, trend)
@@ -219,7 +217,15 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
     return out
 
 
-def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> dict[str, np.ndarray]:
+def _trend_spectrum(trend_basis, w, n_bins):
+    """The windowed spectrum of the trend basis in its lowest ``n_bins`` bins, as real and imaginary parts."""
+    q = as_float(trend_basis)
+    q_spec = scipy.fft.rfft(q * w[:, None], axis=0)[:n_bins]
+    return q, np.ascontiguousarray(q_spec.real, np.float32), np.ascontiguousarray(q_spec.imag, np.float32)
+
+
+def _windowed_spectrum(x, w, trend):
+    """Hann-windowed rFFT of (T, n) traces with the trend removed; also the windowed mean (DC) first."""
     x = np.ascontiguousarray(x)  # a strided column block makes the FFT and products 2x slower
     spec = scipy.fft.rfft(x * w[:, None], axis=0)
     dc = spec[0].real.copy()
@@ -229,6 +235,11 @@ def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> 
         low = spec[:q_re.shape[0]]
         low.real -= q_re @ coef  # real products: numpy's complex-by-real matmul is slow
         low.imag -= q_im @ coef
+    return spec, dc
+
+
+def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> dict[str, np.ndarray]:
+    spec, dc = _windowed_spectrum(x, w, trend)
     power = spec.real ** 2 + spec.imag ** 2  # (F, n) float32
     k_lo, k_hi = plan.band_bins
     n_bins = power.shape[0]
@@ -322,9 +333,7 @@ def periodogram(traces, plan: SpectralPlan, trend_basis=None) -> tuple[np.ndarra
     if x.ndim == 1:
         x = x[:, None]
     w = hann_window(plan.n_frames)
-    spec = scipy.fft.rfft(x * w[:, None], axis=0)
-    if trend_basis is not None:
-        q = as_float(trend_basis)
-        spec -= scipy.fft.rfft(q * w[:, None], axis=0) @ (q.T @ x)
+    trend = None if trend_basis is None else _trend_spectrum(trend_basis, w, plan.n_bins)
+    spec, _ = _windowed_spectrum(x, w, trend)
     freqs = np.arange(spec.shape[0]) * plan.bin_hz
     return freqs, (spec.real ** 2 + spec.imag ** 2).astype(np.float32)

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import re
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -480,10 +479,3 @@ def _decode_video(path: Path):
         raise InputError(f"video {str(path)!r} has no frames.")
     return np.stack(frames), rate
 
-
-_SAFE = re.compile(r"[^A-Za-z0-9._-]+")
-
-
-def safe_name(text: str) -> str:
-    """A file-system-safe short name derived from ``text``."""
-    return _SAFE.sub("_", text).strip("_") or "stack"
