@@ -364,17 +364,10 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             "with `rhythmap convert STACK OUT.ome.zarr` and analyse the converted copy.", stacklevel=2)
     gram_bin = max(1, math.ceil(math.sqrt(y * x / opts["gram_max_pixels"])))
     total = tiles_plan.n_tiles
-    done = [0]
-    ticks: list[Progress] = []
-
-    def on_tile():
-        done[0] += 1
-        ticks.append(Progress(done[0], total, "maps"))
-
     yield Progress(0, total, "maps")
     tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=gram_bin)
              for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
-    results = yield from _drain(tasks, on_tile, cancel, ticks, stack.source)
+    results = yield from _drain(tasks, "maps", cancel, stack.source)
     timings["maps_pass_s"] = time.perf_counter() - t_start
 
     maps = np.full((len(PASS1_KEYS), y, x), np.nan, np.float32)
@@ -449,18 +442,11 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         bases = {label: preprocess.detrend(phase_mod.lockin_basis(th).T, basis).T
                  for label, th in thetas.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
-        done[0] = 0
-        ticks.clear()
-
-        def on_tile2():
-            done[0] += 1
-            ticks.append(Progress(done[0], total, "phase"))
-
         yield Progress(0, total, "phase")
         tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo,
                              labels=labels[y0:y0 + ty, x0:x0 + tx], lockin_bases=bases, dominant=dominant)
                   for b, y0, x0, ty, tx in _tile_arrays(stack.data, tiles_plan)]
-        results2 = yield from _drain(tasks2, on_tile2, cancel, ticks, stack.source)
+        results2 = yield from _drain(tasks2, "phase", cancel, stack.source)
         for r in results2:
             ty, tx = r["phase"].shape
             sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
@@ -479,7 +465,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
                 frame_times, np.mod(theta, 2 * np.pi), diagram=ref.diagram, score=ref.score,
                 second_loop_ratio=ref.second_loop_ratio, quasi_periodic=ref.quasi_periodic,
                 window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau)
-            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], region_period_s(ref), 0.0)
+            delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], ref.mean_period_s, 0.0)
         timings["phase_pass_s"] = time.perf_counter() - t_phase
 
     extra = {"peak_score": m["peak_score"], "mean_intensity": m["mean"]}
@@ -487,7 +473,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         extra["loop_score_tiles"] = extra_loop
     prop: dict = {}
     if references:
-        periods = {label: region_period_s(ref) for label, ref in references.items()}
+        periods = {label: ref.mean_period_s for label, ref in references.items()}
         yield Progress(0, 1, "propagation")
         if cancel is not None and cancel():
             raise CancelledError("the analysis was cancelled")
@@ -520,13 +506,6 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     )
     yield Progress(total, total, "done")
     return result
-
-
-def region_period_s(ref) -> float:
-    """A region's mean period: the mean beat interval (the span of whole beats over their count),
-    or 60 / mean rate when there are fewer than two intervals."""
-    iv = ref.beat_intervals_s
-    return float(iv.mean()) if iv.size >= 2 else 60.0 / ref.rate_mean_bpm
 
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.
@@ -672,8 +651,8 @@ def _gather_bins(results, labels, gram_bin):
     return traces, regions_mod.bin_labels(labels, ids, gram_bin)
 
 
-def _drain(tasks, on_tile, cancel, ticks, source="the stack"):
-    """Run tasks in a worker thread while yielding the ticks it produces.
+def _drain(tasks, stage, cancel, source="the stack"):
+    """Run tasks in a worker thread while yielding one ``Progress(done, len(tasks), stage)`` per finished tile.
 
     The generator stays responsive: the graph runs in a background thread and
     the caller sees one :class:`Progress` per finished tile.
@@ -684,9 +663,11 @@ def _drain(tasks, on_tile, cancel, ticks, source="the stack"):
     q: "queue.Queue[tuple[str, Any]]" = queue.Queue()
     stop = threading.Event()
 
+    done = [0]
+
     def tick():
-        on_tile()
-        q.put(("tick", ticks[-1]))
+        done[0] += 1
+        q.put(("tick", Progress(done[0], len(tasks), stage)))
 
     def is_cancelled():
         return stop.is_set() or (cancel is not None and cancel())

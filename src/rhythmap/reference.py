@@ -82,6 +82,12 @@ class RhythmReference:
         return np.diff(np.asarray(self.beat_times_s, dtype=np.float64))
 
     @property
+    def mean_period_s(self) -> float:
+        """Mean beat period: the mean beat interval, or 60 / mean rate with fewer than two intervals."""
+        iv = self.beat_intervals_s
+        return float(iv.mean()) if iv.size >= 2 else 60.0 / self.rate_mean_bpm
+
+    @property
     def rate_mean_bpm(self) -> float:
         """Beats per minute over the record: unwrapped phase turns / duration * 60."""
         t = np.asarray(self.time_s, dtype=np.float64)

@@ -84,7 +84,7 @@ def render_report(result, path, stack=None) -> Path:
     periods = []
     for label, ref in sorted(result.references.items()):
         inside = labels == label
-        period = _period(ref)
+        period = ref.mean_period_s
         periods.append(f"{label}: {period:.3g} s")
         cycle[inside] = result.delay_s[inside] / period
     im = ax_delay.imshow(cycle, cmap="twilight", vmin=0, vmax=1, extent=extent)
@@ -167,11 +167,6 @@ def render_report(result, path, stack=None) -> Path:
     fig.tight_layout(rect=(0, 0.015, 1, 0.97))
     fig.savefig(path)
     return Path(path)
-
-
-def _period(ref) -> float:
-    iv = ref.beat_intervals_s
-    return float(iv.mean()) if iv.size >= 2 else 60.0 / ref.rate_mean_bpm
 
 
 def _outline(ax, labels, ps):
