@@ -5,7 +5,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from rhythmap import synthetic
+from rhythmap import _loops, synthetic
+
+
+@pytest.fixture(scope="session", autouse=True)
+def _compiled_loops():
+    """Compile rhythmap's loops once before any test, so no timed or GUI test pays for it."""
+    _loops.warm_up()
 
 
 @pytest.fixture(scope="session")

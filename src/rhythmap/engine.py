@@ -27,6 +27,7 @@ import dask
 import dask.array as da
 import numpy as np
 
+from . import _loops
 from . import phase as phase_mod
 from . import presets, preprocess, propagation, regions as regions_mod, rhythm, spectral
 from ._version import __version__
@@ -177,26 +178,21 @@ def _kernel(fn):
     return run
 
 
-def _pooled(block, halo):
-    """Pool a tile with halo and drop the halo: (T, ty*tx) float32 traces and (ty, tx).
-
-    Traces are not detrended here: the spectral kernel removes the trend in
-    the frequency domain, the Gram bins are detrended once on the driver, and
-    pass 2 folds the detrending into its lock-in basis (all cheaper than
-    detrending every pixel in time).
-    """
-    pooled = preprocess.box_pool(block, halo)
-    t, ty, tx = pooled.shape
-    return pooled.reshape(t, ty * tx), (ty, tx)
-
-
 @_kernel
 def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
+    The tile is pooled and transformed one band of rows at a time (about
+    ``spectral.FFT_BLOCK_COLUMNS`` pixels), so a band's traces stay in cache
+    from pooling to peak search. Traces are not detrended in time: the
+    spectral kernel removes the trend in the frequency domain, the Gram bins
+    are detrended once on the driver, and pass 2 folds the detrending into its
+    lock-in basis (all cheaper than detrending every pixel).
+
     Returns a dict with ``maps`` (n_maps, ty, tx) float32 in the order of
-    ``spectral`` output keys, and ``bins`` (global bin ids), ``bin_sums``
-    (T, n_bins) float32 and ``bin_counts`` for the Gram matrix.
+    ``PASS1_KEYS``, and, unless ``gram_bin`` is None, ``bins`` (global bin
+    ids), ``bin_sums`` (T, n_bins) float32 and ``bin_counts`` for the Gram
+    matrix.
     """
     if np.issubdtype(np.asarray(block).dtype, np.floating) and not np.isfinite(block).all():
         bad = np.nonzero(~np.isfinite(block).all(axis=(1, 2)))[0]
@@ -204,42 +200,61 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
             f"the stack holds NaN or infinite values (frames {bad[:5].tolist()}{' ...' if bad.size > 5 else ''} "
             f"near pixel y={y0}, x={x0}); rhythmap needs finite intensities. Replace or drop those frames "
             "(e.g. interpolate them from their neighbours) and run again.")
-    traces, (ty, tx) = _pooled(block, halo)
-    out = spectral.spectral_maps(traces, plan, trend_basis=basis)
-    maps = np.stack([out[k].reshape(ty, tx) for k in PASS1_KEYS])
-    detected = out["detected"].astype(bool)
-    uniq, sums, counts = _bin_detected(traces, detected.reshape(ty, tx), y0, x0, gram_bin)
-    return {"y0": y0, "x0": x0, "maps": maps, "bins": uniq, "bin_sums": sums, "bin_counts": counts}
+    block = np.asarray(block)
+    t, hy, hx = block.shape
+    ty, tx = hy - 2 * halo, hx - 2 * halo
+    maps = np.empty((len(PASS1_KEYS), ty, tx), np.float32)
+    bins = None if gram_bin is None else _TileBins(t, ty, tx, y0, x0, gram_bin)
+    kernel = spectral.SpectralKernel(plan, basis)
+    band_rows = max(1, spectral.FFT_BLOCK_COLUMNS // tx)
+    for r0 in range(0, ty, band_rows):
+        r1 = min(ty, r0 + band_rows)
+        traces = preprocess.box_pool_rows(block, halo, r0, r1).reshape(t, (r1 - r0) * tx)
+        out = kernel.maps(traces)
+        maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
+        if bins is not None:
+            bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)
+    result = {"y0": y0, "x0": x0, "maps": maps}
+    if bins is not None:
+        result.update(bins.finish())
+    return result
 
 
-def _bin_detected(traces, detected, y0, x0, b):
+class _TileBins:
     """Sums of the detected traces over the global b x b bins that a tile touches.
 
     Bins are laid on the whole image (bin (i, j) covers rows i*b.. and columns
     j*b..), so a bin cut by a tile edge is completed by the neighbouring tile
-    when the driver adds the tiles' sums. Returns (bin ids, (T, n) sums, counts)
-    for the bins holding at least one detected pixel.
+    when the driver adds the tiles' sums.
     """
-    t = traces.shape[0]
-    ty, tx = detected.shape
-    oy, ox = y0 % b, x0 % b
-    ny, nx = -(-(oy + ty) // b), -(-(ox + tx) // b)
-    # bin membership of the tile's rows and columns, as 0/1 matrices: the sums
-    # are then two matrix products (BLAS), not slow strided reductions
-    rows = np.zeros((ny, ty), np.float32)
-    rows[(np.arange(ty) + oy) // b, np.arange(ty)] = 1
-    cols = np.zeros((tx, nx), np.float32)
-    cols[np.arange(tx), (np.arange(tx) + ox) // b] = 1
-    masked = (traces * detected.reshape(1, -1)).reshape(t, ty, tx)
-    sums = np.matmul(rows, masked @ cols).reshape(t, ny * nx)
-    counts = (rows @ detected.astype(np.float32) @ cols).ravel().round().astype(np.int64)
-    by, bx = np.divmod(np.arange(ny * nx), nx)
-    ids = ((by + y0 // b).astype(np.int64) << 32) + (bx + x0 // b)
-    keep = counts > 0
-    return ids[keep], np.ascontiguousarray(sums[:, keep]), counts[keep]
+
+    def __init__(self, t, ty, tx, y0, x0, b):
+        self.y0, self.x0, self.b = y0, x0, b
+        oy, ox = y0 % b, x0 % b
+        self.ny, self.nx = -(-(oy + ty) // b), -(-(ox + tx) // b)
+        self.row_bin = (np.arange(ty) + oy) // b
+        self.col_bin = (np.arange(tx) + ox) // b
+        self.tx = tx
+        self.sums = np.zeros((t, self.ny * self.nx), np.float32)
+        self.counts = np.zeros(self.ny * self.nx, np.int64)
+
+    def add(self, traces, detected, r0, r1):
+        """Add the band of rows r0:r1 ((T, (r1 - r0) * tx) traces, their detection flags)."""
+        local = (self.row_bin[r0:r1, None] * self.nx + self.col_bin[None, :]).ravel()
+        local = np.where(detected, local, -1)
+        _loops.add_traces_to_bins(traces, local, self.sums)
+        np.add.at(self.counts, local[detected], 1)
+
+    def finish(self):
+        """``bins`` (global ids), ``bin_sums`` (T, n) and ``bin_counts`` of the bins holding a detected pixel."""
+        by, bx = np.divmod(np.arange(self.ny * self.nx), self.nx)
+        ids = ((by + self.y0 // self.b).astype(np.int64) << 32) + (bx + self.x0 // self.b)
+        keep = self.counts > 0
+        return {"bins": ids[keep], "bin_sums": np.ascontiguousarray(self.sums[:, keep]),
+                "bin_counts": self.counts[keep]}
 
 
-PASS1_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")
+PASS1_KEYS = spectral.MAP_KEYS
 
 
 @_kernel
@@ -365,7 +380,9 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     gram_bin = max(1, math.ceil(math.sqrt(y * x / opts["gram_max_pixels"])))
     total = tiles_plan.n_tiles
     yield Progress(0, total, "maps")
-    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=gram_bin)
+    # a maps-only run needs no Gram bins
+    tile_bin = None if opts["maps_only"] else gram_bin
+    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=tile_bin)
              for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
     results = yield from _drain(tasks, "maps", cancel, stack.source)
     timings["maps_pass_s"] = time.perf_counter() - t_start

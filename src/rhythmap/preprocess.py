@@ -1,7 +1,7 @@
 """Preprocessing kernels on (T, ...) blocks: pooling, binning, detrending.
 
-Pure numpy. Pooling is a square box mean over neighbouring pixels, computed as
-a fixed-order sum of shifted slices so a pixel's value does not depend on where
+Pooling is a square box mean over neighbouring pixels, computed in a fixed
+order per pixel (a compiled loop) so a pixel's value does not depend on where
 its tile starts (the engine promises the same numbers for any chunking).
 Detrending projects each trace off a few slow cosines (a DCT-II basis below a
 cutoff frequency): one matrix product removes bleaching and drift while the
@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import _loops
 from ._dtypes import as_float
 from .errors import InputError
 
@@ -34,8 +35,9 @@ def box_pool(block, radius: int) -> np.ndarray:
 
     Notes
     -----
-    Separable: a sum of 2r+1 shifted slices along Y, then along X, always in
-    the same order, divided by (2r+1)^2.
+    Separable: for each frame, the 2r+1 values down each padded column are
+    summed, then 2r+1 of those column sums across, always in the same order,
+    and divided by (2r+1)^2 (one compiled loop, :mod:`rhythmap._loops`).
 
     Examples
     --------
@@ -49,16 +51,25 @@ def box_pool(block, radius: int) -> np.ndarray:
     r = int(radius)
     if x.ndim != 3 or x.shape[1] <= 2 * r or x.shape[2] <= 2 * r:
         raise InputError(f"box_pool needs a (T, Y, X) block larger than 2*radius={2 * r}; got {x.shape}.")
-    ny, nx = x.shape[1] - 2 * r, x.shape[2] - 2 * r
-    # the first slice is converted to float32 while copied; the rest are added
-    # straight from the input type (no full float32 copy of the block)
-    acc = x[:, 0:ny, :].astype(np.float32)
-    for dy in range(1, 2 * r + 1):
-        np.add(acc, x[:, dy:dy + ny, :], out=acc, casting="unsafe")
-    out = acc[:, :, 0:nx].copy()
-    for dx in range(1, 2 * r + 1):
-        out += acc[:, :, dx:dx + nx]
-    out *= np.float32(1.0 / (2 * r + 1) ** 2)
+    return box_pool_rows(x, r, 0, x.shape[1] - 2 * r)
+
+
+def box_pool_rows(block, radius: int, y_start: int, y_stop: int, out=None) -> np.ndarray:
+    """:func:`box_pool` for the output rows ``y_start:y_stop`` only.
+
+    The engine pools a tile one band of rows at a time, so a band's pooled
+    traces are still in cache when they are transformed. Each output value is
+    computed exactly as :func:`box_pool` computes it. ``out``, if given, is a
+    (T, y_stop - y_start, X - 2r) float32 array to fill.
+    """
+    x = np.asarray(block)
+    r = int(radius)
+    shape = (x.shape[0], y_stop - y_start, x.shape[2] - 2 * r)
+    if out is None:
+        out = np.empty(shape, np.float32)
+    if x.dtype == np.bool_:
+        x = x.view(np.uint8)
+    _loops.box_pool_rows(x, r, int(y_start), int(y_stop), out)
     return out
 
 

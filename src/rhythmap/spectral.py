@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
+from . import _loops
 from ._dtypes import as_float
 from .errors import InputError
 
@@ -33,6 +34,9 @@ TREND_LEAK_BINS = 12
 
 #: Harmonics (including the fundamental) counted by the periodicity score.
 N_HARMONICS = 5
+
+#: Outputs of :func:`spectral_maps`, in the order the compiled kernel fills them.
+MAP_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")
 
 
 @dataclass(frozen=True)
@@ -202,118 +206,80 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
     if x.ndim != 2 or x.shape[0] != plan.n_frames:
         raise InputError(f"traces must be (T={plan.n_frames}, n); got shape {x.shape}.")
     n = x.shape[1]
-    out = {k: np.full(n, np.nan, np.float32) for k in
-           ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")}
-    w = hann_window(plan.n_frames)
-    trend = None
-    if trend_basis is not None:
-        k_cut = min(plan.n_bins, plan.band_bins[0] + plan.trend_bins + TREND_LEAK_BINS)
-        trend = _trend_spectrum(trend_basis, w, k_cut)
+    out = {k: np.empty(n, np.float32) for k in MAP_KEYS}
+    kernel = SpectralKernel(plan, trend_basis)
     for start in range(0, n, FFT_BLOCK_COLUMNS):
         sl = slice(start, min(n, start + FFT_BLOCK_COLUMNS))
-        block = _spectral_block(x[:, sl], w, plan, trend)
-        for key, val in block.items():
-            out[key][sl] = val
+        block = kernel.maps(x[:, sl])
+        for i, key in enumerate(MAP_KEYS):
+            out[key][sl] = block[i]
     return out
 
 
-def _trend_spectrum(trend_basis, w, n_bins):
-    """The windowed spectrum of the trend basis in its lowest ``n_bins`` bins, as real and imaginary parts."""
-    q = as_float(trend_basis)
-    q_spec = scipy.fft.rfft(q * w[:, None], axis=0)[:n_bins]
-    return q, np.ascontiguousarray(q_spec.real, np.float32), np.ascontiguousarray(q_spec.imag, np.float32)
+class SpectralKernel:
+    """:func:`spectral_maps` on one block of traces, with the trend spectrum made once.
 
+    The engine pools each band of a tile into a (T, n) block and calls
+    :meth:`maps`; the steps after the FFT run in compiled loops
+    (:mod:`rhythmap._loops`).
 
-def _windowed_spectrum(x, w, trend):
-    """Hann-windowed rFFT of (T, n) traces with the trend removed; also the windowed mean (DC) first."""
-    x = np.ascontiguousarray(x)  # a strided column block makes the FFT and products 2x slower
-    spec = scipy.fft.rfft(x * w[:, None], axis=0)
-    dc = spec[0].real.copy()
-    if trend is not None:
-        q, q_re, q_im = trend
-        coef = q.T @ x
-        low = spec[:q_re.shape[0]]
-        low.real -= q_re @ coef  # real products: numpy's complex-by-real matmul is slow
-        low.imag -= q_im @ coef
-    return spec, dc
+    Examples
+    --------
+    >>> t = np.arange(400) * 0.05
+    >>> x = np.sin(2 * np.pi * 1.3 * t)[:, None].astype(np.float32)
+    >>> out = SpectralKernel(plan_spectrum(400, 0.05, (30, 180))).maps(x)
+    >>> round(float(out[MAP_KEYS.index("rate_bpm"), 0]), 2)
+    78.0
+    """
 
+    def __init__(self, plan: SpectralPlan, trend_basis=None, n_bins_trend=None):
+        self.plan = plan
+        window = hann_window(plan.n_frames)
+        self.window_sum = float(window.sum())
+        k_cut = 0
+        q = np.zeros((plan.n_frames, 0), np.float32)
+        if trend_basis is not None:
+            k_cut = n_bins_trend or min(plan.n_bins, plan.band_bins[0] + plan.trend_bins + TREND_LEAK_BINS)
+            q = as_float(trend_basis)
+        q_spec = scipy.fft.rfft(q * window[:, None], axis=0)[:k_cut]
+        self.trend_basis_t = np.ascontiguousarray(q.T)
+        self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
+        self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
 
-def _spectral_block(x: np.ndarray, w: np.ndarray, plan: SpectralPlan, trend) -> dict[str, np.ndarray]:
-    spec, dc = _windowed_spectrum(x, w, trend)
-    power = spec.real ** 2 + spec.imag ** 2  # (F, n) float32
-    k_lo, k_hi = plan.band_bins
-    n_bins = power.shape[0]
-    cols = np.arange(power.shape[1])
+    def power(self, traces):
+        """Hann-windowed, detrended periodogram of (T, n) traces: ((F, n) float32, each trace's windowed sum).
 
-    # White-noise level: the median ordinate above the trend bins is ln 2 times
-    # the mean of an exponential distribution, and hardly moved by a few peaks.
-    above = power[plan.trend_bins + 1:]
-    # Median of every other ordinate (neighbouring Hann bins are correlated, so
-    # little is lost), along a contiguous axis where partition is fastest.
-    above_t = np.ascontiguousarray(above[::2].T)
-    mid = above_t.shape[1] // 2
-    noise = np.partition(above_t, mid, axis=1)[:, mid] / np.log(2.0)
-    noise = np.maximum(noise, np.finfo(np.float32).tiny)
+        One plain rFFT along time; the window and the trend removal are applied
+        to the spectrum in one compiled loop (:func:`rhythmap._loops.windowed_power`),
+        which equals windowing and detrending in time.
+        """
+        x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
+        t, n = x.shape
+        spec = scipy.fft.rfft(x, axis=0)
+        coef = self.trend_basis_t @ x
+        power = np.empty(spec.shape, np.float32)
+        dc = np.empty(n, np.float32)
+        _loops.windowed_power(spec, t, coef, self.trend_re, self.trend_im, power, dc)
+        return power, dc
 
-    band = power[k_lo:k_hi + 1]
-    k = k_lo + np.argmax(band, axis=0)
-    peak = power[k, cols]
-    # Octave check: a pulse train has strong harmonics; take the lowest
-    # divisor whose bin is itself significant and not much weaker.
-    for q in (3, 2):
-        kq = np.rint(k / q).astype(int)
-        ok = kq >= k_lo
-        kq_c = np.clip(kq, 1, n_bins - 2)
-        pq = np.maximum.reduce([power[kq_c - 1, cols], power[kq_c, cols], power[kq_c + 1, cols]])
-        kq_best = kq_c - 1 + np.argmax(np.stack([power[kq_c - 1, cols], power[kq_c, cols],
-                                                 power[kq_c + 1, cols]]), axis=0)
-        take = ok & (pq >= 0.2 * peak) & (pq / noise > plan.threshold) & (kq_best >= k_lo)
-        k = np.where(take, kq_best, k)
-        peak = power[k, cols]
-    k = np.clip(k, 1, n_bins - 2)
-    score = peak / noise
-    detected = score > plan.threshold
-
-    tiny = np.float32(1e-30)
-    lm = 0.5 * np.log(power[k - 1, cols] + tiny)
-    l0 = 0.5 * np.log(power[k, cols] + tiny)
-    lp = 0.5 * np.log(power[k + 1, cols] + tiny)
-    denom = 2.0 * l0 - lm - lp
-    delta = np.where(denom > 0, 0.5 * (lp - lm) / np.where(denom > 0, denom, 1.0), 0.0)
-    delta = np.clip(delta, -0.5, 0.5)
-    freq_hz = (k + delta) * plan.bin_hz
-    # Undo the Hann window's scalloping at the refined offset: its transform
-    # falls as sinc(d) / (1 - d^2) away from the true frequency.
-    amplitude = 2.0 * np.exp(l0) / (float(w.sum()) * np.sinc(delta) / (1.0 - delta ** 2))
-
-    total = above.sum(axis=0)
-    harm = np.zeros_like(total)
-    f_bins = k + delta
-    # the windows h*f +- 1 bin of different harmonics are disjoint once f >= 3
-    # bins (always, as the recording spans >= 3 cycles of the lowest rate)
-    for h in range(1, N_HARMONICS + 1):
-        kh = np.rint(h * f_bins).astype(int)
-        for off in (-1, 0, 1):
-            kk = kh + off
-            valid = (kk > plan.trend_bins) & (kk < n_bins)
-            harm += np.where(valid, power[np.clip(kk, 0, n_bins - 1), cols], 0.0)
-    periodicity = np.where(total > 0, harm / np.where(total > 0, total, 1.0), 0.0)
-
-    # A trace that does not change is not a rhythm, however the rounding noise of
-    # its spectrum compares with itself.
-    constant = total <= 1e-12 * dc * dc + 1e-30  # nothing but rounding beside the mean
-    detected &= ~constant
-    rate = np.where(detected, freq_hz * 60.0, np.nan)
-    return {
-        "rate_bpm": rate,
-        "period_s": np.where(detected, 1.0 / freq_hz, np.nan),
-        "amplitude": np.where(detected, amplitude, np.nan),
-        "periodicity": np.clip(periodicity, 0.0, 1.0),
-        "peak_score": score,
-        "detected": detected.astype(np.float32),
-        "constant": constant.astype(np.float32),
-        "mean": (dc / float(w.sum())).astype(np.float32),
-    }
+    def maps(self, traces) -> np.ndarray:
+        """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order."""
+        plan = self.plan
+        power, dc = self.power(traces)
+        n_bins, n = power.shape
+        first = plan.trend_bins + 1
+        # White-noise level: the median ordinate above the trend bins is ln 2
+        # times the mean of an exponential distribution, and hardly moved by a
+        # few peaks. Every other ordinate: neighbouring Hann bins are correlated.
+        ordinates = np.empty((n, (n_bins - first + 1) // 2), np.float32)
+        _loops.noise_ordinates(power, first, ordinates)
+        mid = ordinates.shape[1] // 2
+        ordinates.partition(mid, axis=1)
+        out = np.empty((len(MAP_KEYS), n), np.float32)
+        _loops.spectral_block(power, np.ascontiguousarray(ordinates[:, mid]), dc, plan.band_bins[0],
+                              plan.band_bins[1], plan.trend_bins, plan.threshold, plan.bin_hz, self.window_sum,
+                              N_HARMONICS, out)
+        return out
 
 
 def periodogram(traces, plan: SpectralPlan, trend_basis=None) -> tuple[np.ndarray, np.ndarray]:
@@ -332,8 +298,6 @@ def periodogram(traces, plan: SpectralPlan, trend_basis=None) -> tuple[np.ndarra
     x = as_float(traces)
     if x.ndim == 1:
         x = x[:, None]
-    w = hann_window(plan.n_frames)
-    trend = None if trend_basis is None else _trend_spectrum(trend_basis, w, plan.n_bins)
-    spec, _ = _windowed_spectrum(x, w, trend)
-    freqs = np.arange(spec.shape[0]) * plan.bin_hz
-    return freqs, (spec.real ** 2 + spec.imag ** 2).astype(np.float32)
+    kernel = SpectralKernel(plan, trend_basis, n_bins_trend=plan.n_bins if trend_basis is not None else None)
+    power, _ = kernel.power(x)
+    return np.arange(power.shape[0]) * plan.bin_hz, power

@@ -1,0 +1,248 @@
+"""Compiled inner loops (numba) for the per-pixel kernels that numpy cannot fuse.
+
+The spectral maps cost, per pixel, one FFT plus a handful of cheap steps
+(pooling, power, a median, a peak search, harmonic sums). Written as numpy
+array expressions each step is a separate pass over memory, and together they
+cost four times the FFT; as one compiled loop per pixel they cost a fraction
+of it. Each function here is the single implementation of its step; the
+public functions in :mod:`rhythmap.preprocess` and :mod:`rhythmap.spectral`
+check their arguments and call these. All functions release the GIL, so the
+engine's tile threads run them in parallel, and cache their machine code next
+to this file (the first call in a fresh install compiles for a few seconds).
+
+The arithmetic order of every output is fixed by the pixel alone (never by
+where a tile or band starts), which keeps the engine's promise of identical
+numbers for any chunking.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+_JIT = {"nopython": True, "nogil": True, "cache": True}
+
+
+@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
+def _pooled_row(block, t, y, radius, colsum, rowsum):
+    """Fill ``rowsum`` with the box sums of output row y (padded-block row y + radius) of frame t."""
+    side = 2 * radius + 1
+    width = colsum.shape[0]
+    nx = rowsum.shape[0]
+    # loops over whole rows innermost, so they compile to vector instructions
+    for c in range(width):
+        colsum[c] = np.float32(block[t, y, c])
+    for dy in range(1, side):
+        for c in range(width):
+            colsum[c] += np.float32(block[t, y + dy, c])
+    for x in range(nx):
+        rowsum[x] = colsum[x]
+    for dx in range(1, side):
+        for x in range(nx):
+            rowsum[x] += colsum[x + dx]
+
+
+@numba.jit(**_JIT)
+def box_pool_rows(block, radius, y_start, y_stop, out):
+    """Box mean of ``block`` (T, Y + 2r, X + 2r) for output rows ``y_start:y_stop``.
+
+    Writes (T, y_stop - y_start, X) float32 into ``out``. Per pixel and frame:
+    the 2r+1 rows of each padded column are summed first (top to bottom),
+    then the 2r+1 column sums (left to right), then scaled by 1/(2r+1)^2.
+    """
+    width = block.shape[2]
+    nx = width - 2 * radius
+    scale = np.float32(1.0 / ((2 * radius + 1) ** 2))
+    colsum = np.empty(width, np.float32)
+    rowsum = np.empty(nx, np.float32)
+    for t in range(block.shape[0]):
+        for y in range(y_start, y_stop):
+            _pooled_row(block, t, y, radius, colsum, rowsum)
+            for x in range(nx):
+                out[t, y - y_start, x] = rowsum[x] * scale
+
+
+@numba.jit(**_JIT)
+def windowed_power(spec, n_frames, coef, trend_re, trend_im, power, dc):
+    """Hann-windowed, detrended periodogram of traces from their plain rFFT.
+
+    ``spec`` (F, n) complex64 is the rFFT along time (axis 0) of the traces
+    without a window. The periodic Hann window w(t) = 1/2 - cos(2 pi t / T) / 2
+    is applied here in the frequency domain, where it is exactly the
+    three-tap filter X_w[k] = X[k] / 2 - (X[k-1] + X[k+1]) / 4 (with
+    X[-k] = conj(X[k]) and X[T-k] = conj(X[k]) past the ends), which saves a
+    pass over the traces. Then the trend components' windowed spectrum,
+    ``(trend_re + i trend_im) @ coef`` ((F_trend, K) @ (K, n)), is subtracted
+    from the lowest bins. Writes ``power`` (F, n) float32 and ``dc`` (n,),
+    the windowed sum of each trace before the trend was removed. Every loop
+    runs over the traces innermost (contiguous), so it vectorises.
+    """
+    n_bins, n = spec.shape
+    n_low = trend_re.shape[0]
+    n_k = coef.shape[0]
+    re = np.empty(n, np.float32)
+    im = np.empty(n, np.float32)
+    for k in range(n_bins):
+        here = spec[k]
+        if k == 0:
+            left, left_sign = spec[1], np.float32(-1.0)
+        else:
+            left, left_sign = spec[k - 1], np.float32(1.0)
+        if k + 1 < n_bins:
+            right, right_sign = spec[k + 1], np.float32(1.0)
+        else:  # X[k + 1] = conj(X[T - k - 1])
+            right, right_sign = spec[n_frames - k - 1], np.float32(-1.0)
+        for j in range(n):
+            re[j] = np.float32(0.5) * here[j].real - np.float32(0.25) * (left[j].real + right[j].real)
+            im[j] = np.float32(0.5) * here[j].imag - np.float32(0.25) * (left_sign * left[j].imag
+                                                                         + right_sign * right[j].imag)
+        if k == 0:
+            for j in range(n):
+                dc[j] = re[j]
+        if k < n_low:
+            for i in range(n_k):
+                a, b = trend_re[k, i], trend_im[k, i]
+                for j in range(n):
+                    re[j] -= a * coef[i, j]
+                    im[j] -= b * coef[i, j]
+        for j in range(n):
+            power[k, j] = re[j] * re[j] + im[j] * im[j]
+
+
+@numba.jit(**_JIT)
+def noise_ordinates(power, first, out):
+    """``out[j, i] = power[first + 2 i, j]``: each trace's noise ordinates, trace-major for numpy's partition."""
+    m, n = out.shape[1], out.shape[0]
+    step = 16
+    for j0 in range(0, n, step):  # a few traces at a time, so reads and writes both stay in cache
+        j1 = min(n, j0 + step)
+        for i in range(m):
+            row = power[first + 2 * i]
+            for j in range(j0, j1):
+                out[j, i] = row[j]
+
+
+@numba.jit(**_JIT)
+def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum,
+                   n_harmonics, out):
+    """Per-trace peak search, refinement and periodicity on a periodogram.
+
+    ``power`` is (F, n) float32, one column per trace, trend already removed;
+    ``noise_median`` (n,) the median of its noise ordinates; ``dc`` (n,) each
+    trace's windowed sum before the trend was removed. ``out`` is (8, n)
+    float32, filled in the order rate_bpm, period_s, amplitude, periodicity,
+    peak_score, detected, constant, mean (see
+    :func:`rhythmap.spectral.spectral_maps` for the method).
+    """
+    n_bins, n = power.shape
+    ln2 = math.log(2.0)
+    tiny = np.finfo(np.float32).tiny
+    # sums and band maxima with the traces innermost (vectorised), then each trace on its own
+    total = np.zeros(n, np.float64)
+    for k in range(trend_bins + 1, n_bins):
+        row = power[k]
+        for j in range(n):
+            total[j] += row[j]
+    band_peak = np.empty(n, np.int64)
+    best_val = np.empty(n, np.float32)
+    for j in range(n):
+        band_peak[j] = k_lo
+        best_val[j] = power[k_lo, j]
+    for kk in range(k_lo + 1, k_hi + 1):
+        row = power[kk]
+        for j in range(n):
+            if row[j] > best_val[j]:  # strictly greater: the first maximum wins, as numpy's argmax
+                best_val[j] = row[j]
+                band_peak[j] = kk
+    for j in range(n):
+        p = power[:, j]
+        noise = max(noise_median[j] / ln2, tiny)
+        k = band_peak[j]
+        peak = p[k]
+        # Octave check: a pulse train has strong harmonics; take the lowest
+        # divisor whose bin is itself significant and not much weaker.
+        for q in (3, 2):
+            kq = int(np.rint(k / q))
+            kq_c = min(max(kq, 1), n_bins - 2)
+            best = kq_c - 1
+            for kk in (kq_c, kq_c + 1):
+                if p[kk] > p[best]:
+                    best = kk
+            pq = p[best]
+            if kq >= k_lo and pq >= 0.2 * peak and pq / noise > threshold and best >= k_lo:
+                k = best
+                peak = pq
+        k = min(max(k, 1), n_bins - 2)
+        peak = p[k]
+        score = peak / noise
+
+        lm = 0.5 * math.log(p[k - 1] + 1e-30)
+        l0 = 0.5 * math.log(p[k] + 1e-30)
+        lp = 0.5 * math.log(p[k + 1] + 1e-30)
+        denom = 2.0 * l0 - lm - lp
+        delta = 0.5 * (lp - lm) / denom if denom > 0 else 0.0
+        delta = min(max(delta, -0.5), 0.5)
+        freq_hz = (k + delta) * bin_hz
+        # Undo the Hann window's scalloping at the refined offset: its
+        # transform falls as sinc(d) / (1 - d^2) away from the true frequency.
+        sinc = math.sin(math.pi * delta) / (math.pi * delta) if delta != 0.0 else 1.0
+        amplitude = 2.0 * math.exp(l0) / (window_sum * sinc / (1.0 - delta * delta))
+
+        harm = 0.0
+        f_bins = k + delta
+        for h in range(1, n_harmonics + 1):
+            kh = int(np.rint(h * f_bins))
+            for kk in (kh - 1, kh, kh + 1):
+                if trend_bins < kk < n_bins:
+                    harm += p[kk]
+        periodicity = harm / total[j] if total[j] > 0 else 0.0
+
+        constant = total[j] <= 1e-12 * dc[j] * dc[j] + 1e-30  # nothing but rounding beside the mean
+        detected = score > threshold and not constant
+        out[0, j] = freq_hz * 60.0 if detected else np.nan
+        out[1, j] = 1.0 / freq_hz if detected else np.nan
+        out[2, j] = amplitude if detected else np.nan
+        if constant:  # its spectrum is rounding noise: no peak, no harmonics
+            score = 0.0
+            periodicity = 0.0
+        out[3, j] = min(max(periodicity, 0.0), 1.0)
+        out[4, j] = score
+        out[5, j] = 1.0 if detected else 0.0
+        out[6, j] = 1.0 if constant else 0.0
+        out[7, j] = dc[j] / window_sum
+
+
+@numba.jit(**_JIT)
+def add_traces_to_bins(traces, trace_bin, sums):
+    """``sums[:, b] += traces[:, j]`` for every trace j with ``trace_bin[j] = b >= 0`` (in trace order).
+
+    ``traces`` is (T, n) and ``sums`` (T, n_bins).
+    """
+    n_t, n = traces.shape
+    for t in range(n_t):
+        for j in range(n):
+            b = trace_bin[j]
+            if b >= 0:
+                sums[t, b] += traces[t, j]
+
+
+def warm_up() -> None:
+    """Compile (or load from the cache) every loop for the common input types.
+
+    The first call of each loop in a fresh install compiles it, which takes
+    seconds and holds the interpreter; front ends and the test suite call this
+    once at the start so that no analysis pays for it midway.
+    """
+    spec = np.zeros((5, 3), np.complex64)
+    spec[1] = 1.0
+    power = np.empty((5, 3), np.float32)
+    windowed_power(spec, 8, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32),
+                   np.zeros((2, 1), np.float32), power, np.empty(3, np.float32))
+    noise_ordinates(power, 1, np.empty((3, 2), np.float32))
+    spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
+                   np.empty((8, 3), np.float32))
+    add_traces_to_bins(np.zeros((2, 3), np.float32), np.array([0, -1, 0]), np.zeros((2, 1), np.float32))
+    for dtype in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
+        box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
