@@ -160,3 +160,30 @@ def test_phase_kernel_pools_projections_exactly_like_pooled_traces(rng):
     ph, coh, _ = phase_mod.lockin(pooled, basis)
     np.testing.assert_allclose(out["phase"].ravel(), ph, atol=2e-5)
     np.testing.assert_allclose(out["coherence"].ravel(), coh, atol=2e-5)
+
+
+def test_tile_bins_hold_the_sums_of_the_detected_pooled_traces(rng):
+    """Pass 1's Gram bins: per global b x b bin, the sum of the detected pixels' pooled traces."""
+    t = np.arange(300) * 0.05
+    tissue = np.zeros((1, 22, 26))
+    tissue[:, 3:15, 2:13] = 1
+    block = (600 + 40 * np.sin(2 * np.pi * 1.2 * t)[:, None, None] * tissue
+             + rng.normal(0, 3, (300, 22, 26))).astype(np.uint16)
+    plan = spectral.plan_spectrum(300, 0.05, (30, 180))
+    q = preprocess.trend_basis(300, 0.05, 0.25)
+    y0, x0, b = 13, 6, 4
+    out = engine.maps_tile_kernel(block, y0, x0, halo=1, plan=plan, basis=q, gram_bin=b)
+    pooled = preprocess.box_pool(block, 1)
+    detected = out["maps"][engine.PASS1_KEYS.index("detected")] > 0
+    assert 0.2 < detected.mean() < 0.9
+    expect = {}
+    for yy, xx in zip(*np.nonzero(detected)):
+        key = (((y0 + yy) // b) << 32) + (x0 + xx) // b
+        expect[key] = expect.get(key, 0) + pooled[:, yy, xx].astype(np.float64)
+    assert sorted(out["bins"].tolist()) == sorted(expect)
+    for i, key in enumerate(out["bins"].tolist()):
+        np.testing.assert_allclose(out["bin_sums"][:, i], expect[key], rtol=1e-5)
+    assert out["bin_counts"].sum() == detected.sum()
+    maps_only = engine.maps_tile_kernel(block, y0, x0, halo=1, plan=plan, basis=q, gram_bin=None)
+    assert "bins" not in maps_only
+    np.testing.assert_array_equal(maps_only["maps"], out["maps"])

@@ -52,3 +52,18 @@ def test_uint16_becomes_float32():
     x = np.full((3, 4, 4), 65000, np.uint16)
     assert preprocess.box_pool(np.pad(x, ((0, 0), (1, 1), (1, 1)), mode="edge"), 1).dtype == np.float32
     assert preprocess.detrend(x.reshape(3, 16), preprocess.trend_basis(3, 1.0, 0.1)).dtype == np.float32
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.int16, np.float64])
+def test_box_pool_of_any_number_type_equals_the_float_sum(rng, dtype):
+    x = (rng.random((3, 11, 13)) * 200).astype(dtype)
+    ref = scipy.ndimage.uniform_filter(x.astype(np.float64), size=(1, 3, 3))[:, 1:-1, 1:-1]
+    np.testing.assert_allclose(preprocess.box_pool(x, 1), ref, rtol=1e-6, atol=1e-4)
+
+
+def test_box_pool_rows_equal_the_rows_of_the_whole_pool(rng):
+    """The engine pools a tile band by band; each band is exactly those rows of the whole pool."""
+    x = rng.standard_normal((6, 20, 17)).astype(np.float32)
+    whole = preprocess.box_pool(x, 2)
+    for y0, y1 in [(0, 3), (3, 11), (11, 16)]:
+        np.testing.assert_array_equal(preprocess.box_pool_rows(x, 2, y0, y1), whole[:, y0:y1])

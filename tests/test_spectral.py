@@ -132,3 +132,30 @@ def test_frequency_domain_detrend_equals_time_domain(rng):
     # Bleaching alone is not a rhythm once the trend is removed.
     bleach_only = (3000 * np.exp(-t / 6)[:, None] + rng.normal(0, 5, (T, 2000))).astype(np.float32)
     assert spectral.spectral_maps(bleach_only, plan, trend_basis=q)["detected"].mean() < 0.005
+
+
+@pytest.mark.parametrize("n_frames", [400, 401])
+def test_window_applied_in_frequency_domain_equals_windowing_in_time(rng, n_frames):
+    """The kernel's periodogram (plain rFFT, then the Hann window and the trend removal as a
+    three-tap filter on the spectrum) equals numpy's rFFT of Hann-windowed, time-detrended traces
+    in every bin, for even and odd T."""
+    t = np.arange(n_frames) * DT
+    x = (800 + 300 * np.exp(-t / 5)[:, None] + 15 * np.sin(2 * np.pi * 1.1 * t)[:, None]
+         + rng.normal(0, 4, (n_frames, 30))).astype(np.float32)
+    q = trend_basis(n_frames, DT, 0.25)
+    plan = _plan((30, 180), n=n_frames)
+    _, power = spectral.periodogram(x, plan, trend_basis=q)
+    w = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n_frames) / n_frames)
+    direct = np.abs(np.fft.rfft(detrend(x.astype(np.float64), q.astype(np.float64)) * w[:, None], axis=0)) ** 2
+    assert power.shape == direct.shape
+    np.testing.assert_allclose(power, direct, atol=2e-5 * direct.max())
+    # the maps read from the same periodogram: peak at the beat
+    maps = spectral.spectral_maps(x, plan, trend_basis=q)
+    np.testing.assert_allclose(maps["rate_bpm"], 66.0, atol=0.3)
+
+
+def test_constant_traces_have_no_peak_and_no_periodicity():
+    x = np.full((T, 4), 123.0, np.float32)
+    out = spectral.spectral_maps(x, _plan(), trend_basis=trend_basis(T, DT, 0.25))
+    assert (out["constant"] == 1).all() and (out["detected"] == 0).all()
+    assert (out["peak_score"] == 0).all() and (out["periodicity"] == 0).all()

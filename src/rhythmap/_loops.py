@@ -246,3 +246,4 @@ def warm_up() -> None:
     add_traces_to_bins(np.zeros((2, 3), np.float32), np.array([0, -1, 0]), np.zeros((2, 1), np.float32))
     for dtype in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
         box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
+

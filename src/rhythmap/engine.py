@@ -257,6 +257,11 @@ class _TileBins:
 PASS1_KEYS = spectral.MAP_KEYS
 
 
+#: Pixels converted to float32 and projected at once in pass 2: the converted
+#: block stays in cache for the matrix product, and no tile-sized copy is made.
+PROJECT_STEP_PX = 2048
+
+
 @_kernel
 def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     """Pass 2 on one tile: lock-in phase and coherence of every pixel against its region's reference.
@@ -267,21 +272,33 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     """
     t, hy, hx = block.shape
     ty, tx = hy - 2 * halo, hx - 2 * halo
-    raw = np.asarray(block).reshape(t, hy * hx)
+    raw = np.ascontiguousarray(block).reshape(t, hy * hx)
     lab = labels.ravel()
+    present = np.unique(lab).tolist()
+    refs = sorted({label if label in lockin_bases else dominant for label in present})
+    # Lock-in is linear in the trace: project every pixel (halo included) on
+    # every basis needed here, then pool the few projected rows instead of every frame.
+    stacked = np.concatenate([lockin_bases[r] for r in refs])
+    proj = np.empty((stacked.shape[0], hy * hx), np.float32)
+    buf = np.empty((t, min(PROJECT_STEP_PX, hy * hx)), np.float32)
+    for p0 in range(0, hy * hx, PROJECT_STEP_PX):
+        p1 = min(hy * hx, p0 + PROJECT_STEP_PX)
+        part = buf[:, :p1 - p0]
+        np.copyto(part, raw[:, p0:p1], casting="unsafe")
+        np.matmul(stacked, part, out=proj[:, p0:p1])
+    pooled_by_ref: dict = {}
+    start = 0
+    for ref_label in refs:
+        n_rows = lockin_bases[ref_label].shape[0]
+        rows = proj[start:start + n_rows].reshape(n_rows, hy, hx)
+        pooled_by_ref[ref_label] = preprocess.box_pool(rows, halo).reshape(n_rows, ty * tx)
+        start += n_rows
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
-    pooled_by_ref: dict = {}
-    for label in np.unique(lab).tolist():
+    for label in present:
         sel = lab == label
         ref_label = label if label in lockin_bases else dominant
-        basis = lockin_bases[ref_label]
-        if ref_label not in pooled_by_ref:
-            # Lock-in is linear in the trace: project every pixel (halo included),
-            # then pool the few projected rows instead of every frame.
-            proj = (basis @ raw.astype(np.float32, copy=False)).reshape(-1, hy, hx)
-            pooled_by_ref[ref_label] = preprocess.box_pool(proj, halo).reshape(basis.shape[0], ty * tx)
-        ph, c, _ = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], basis)
+        ph, c, _ = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], lockin_bases[ref_label])
         coh[sel] = c
         if label in lockin_bases:
             phase[sel] = ph
