@@ -210,6 +210,30 @@ def test_worker_killed_mid_batch_gives_identical_results(experiment, reference, 
 
 
 @pytest.mark.cluster
+def test_stacks_are_driven_from_both_workers(experiment, cluster, tmp_path):
+    """A stack's driver task secedes, so its worker looks idle; the runner still sends each new
+    driver to the worker driving the fewest stacks. Else the scheduler may put two drivers in one
+    process, where their serial steps share one interpreter lock, and 2 workers barely beat 1."""
+    from distributed import Client, get_task_stream
+
+    with Client(cluster.scheduler_address, set_as_default=False) as watcher:
+        with get_task_stream(client=watcher) as stream:
+            rc = _run(experiment["folder"] / "good_twice.csv", "-o", tmp_path / "out", "--scheduler",
+                      cluster.scheduler_address, *RATE, "--quiet", "--no-report", "--in-flight", "2")
+        assert rc == 0
+    spans = {}
+    for task in stream.data:
+        if str(task["key"]).startswith("rhythmap-stack-"):
+            times = [(s["start"], s["stop"]) for s in task["startstops"] if s["action"] == "compute"]
+            spans.setdefault(task["worker"], []).append((min(a for a, _ in times), max(b for _, b in times)))
+    assert sum(map(len, spans.values())) == 2 * len(GOOD) and len(spans) == 2
+    for worker, runs in spans.items():  # two stacks in flight, two workers: one driver per worker at a time
+        runs.sort()
+        overlaps = [(a, b) for a, b in zip(runs, runs[1:]) if b[0] < a[1] - 0.05]
+        assert not overlaps, f"{worker} drove two stacks at once: {overlaps}"
+
+
+@pytest.mark.cluster
 def test_runner_killed_mid_batch_then_rerun_finishes_only_the_rest(experiment, reference, cluster, tmp_path):
     out = tmp_path / "out"
     env = {k: v for k, v in os.environ.items() if k != "DASK_SCHEDULER_ADDRESS"}

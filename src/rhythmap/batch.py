@@ -723,7 +723,12 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     One :func:`stack_task` per stack; at most ``in_flight`` of them (default:
     the cluster's worker threads + 1) are submitted at once, since each
     secedes from its worker's pool and would otherwise all start together.
-    Scheduling, retries and moving work off a lost worker are dask's. A stack
+    Each goes to the worker driving the fewest stacks: a seceded task leaves
+    its worker looking idle, so the scheduler alone would stack the drivers on
+    one worker process, where their serial steps (persistence, propagation,
+    saving) share one interpreter lock. The choice is a preference
+    (``allow_other_workers``): if that worker is lost, dask runs the stack
+    elsewhere. Retries and moving work off a lost worker are dask's. A stack
     that fails is recorded and the batch goes on.
     """
     from distributed import Event, as_completed
@@ -737,12 +742,30 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     client.subscribe_topic(topic, bars.on_event)
     outcomes: dict[int, Outcome] = {}
     started: dict[str, tuple[int, float]] = {}
+    driving: dict[str, str] = {}  # stack task key -> the worker it was sent to
+
+    def least_busy_worker() -> str | None:
+        try:
+            workers = list(client.scheduler_info()["workers"])
+        except Exception:  # noqa: BLE001 - no answer: let the scheduler choose
+            return None
+        if not workers:
+            return None
+        load = {w: 0 for w in workers}
+        for w in driving.values():
+            if w in load:
+                load[w] += 1
+        return min(workers, key=lambda w: load[w])
 
     def submit(i: int):
         item = plan.items[i]
+        target = least_busy_worker()
+        where = {"workers": [target], "allow_other_workers": True} if target else {}
         fut = client.submit(stack_task, item, plan, stop.name, topic, pure=False,
-                            key=f"rhythmap-stack-{item.name}-{run_id}")
+                            key=f"rhythmap-stack-{item.name}-{run_id}", **where)
         started[fut.key] = (i, time.perf_counter())
+        if target:
+            driving[fut.key] = target
         return fut
 
     queue = iter(range(len(plan.items)))
@@ -750,6 +773,7 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     try:
         for fut in futures:
             i, t0 = started.pop(fut.key)
+            driving.pop(fut.key, None)
             item = plan.items[i]
             if fut.status == "finished":
                 res = fut.result()
