@@ -131,7 +131,7 @@ def _parallelism() -> tuple[int, int]:
 
 def _split(n, size, min_last=1):
     """Cut n into pieces of ``size``; a last piece shorter than ``min_last`` joins the one before
-    (dask's overlap would otherwise regroup the chunks behind the tile offsets' back)."""
+    (a tile's neighbours give it strips ``halo`` deep, so no tile may be shallower)."""
     full, rest = divmod(n, size)
     parts = [size] * full + ([rest] if rest else [])
     if len(parts) > 1 and parts[-1] < min_last:
@@ -140,20 +140,118 @@ def _split(n, size, min_last=1):
 
 
 def _tile_arrays(data: da.Array, plan: TilePlan):
-    """The tile blocks of a pass (with halo) and their (y0, x0) offsets."""
+    """The tiles of a pass: ``(pieces, y0, x0, ty, tx)`` per tile.
+
+    ``pieces`` is a 3 x 3 grid (rows top, middle, bottom) of delayed arrays:
+    the tile itself in the middle and, around it, the ``halo``-wide strips and
+    corners of its neighbours, with the image's edge rows and columns
+    repeated where there is no neighbour. The kernels read the pieces where
+    they lie (:class:`PaddedTile`), instead of a halo-padded copy of every
+    tile, which cost a copy of the whole stack per pass.
+    """
     t = data.shape[0]
-    x = data.rechunk((t,) + plan.chunks)
-    if plan.halo:
-        x = da.overlap.overlap(x, depth={0: 0, 1: plan.halo, 2: plan.halo},
-                               boundary={0: "none", 1: "nearest", 2: "nearest"})
-    blocks = x.to_delayed()[0]
+    blocks = data.rechunk((t,) + plan.chunks).to_delayed()[0]
+    h = plan.halo
+    n_y, n_x = len(plan.chunks[0]), len(plan.chunks[1])
     y_offsets = np.concatenate([[0], np.cumsum(plan.chunks[0])[:-1]])
     x_offsets = np.concatenate([[0], np.cumsum(plan.chunks[1])[:-1]])
+
+    def edge(n_blocks, i, d):
+        """Which block and which of its rows (or columns) form the piece in direction d (-1, 0, 1)."""
+        if d == 0:
+            return i, slice(None)
+        j = i + d
+        if 0 <= j < n_blocks:
+            return j, (slice(-h, None) if d < 0 else slice(0, h))
+        return i, ([0] * h if d < 0 else [-1] * h)  # no neighbour: repeat the edge
+
     tiles = []
     for iy, y0 in enumerate(y_offsets):
         for ix, x0 in enumerate(x_offsets):
-            tiles.append((blocks[iy, ix], int(y0), int(x0), plan.chunks[0][iy], plan.chunks[1][ix]))
+            if h == 0:
+                pieces = blocks[iy, ix]
+            else:
+                grid = []
+                for dy in (-1, 0, 1):
+                    row = []
+                    by, rows = edge(n_y, iy, dy)
+                    for dx in (-1, 0, 1):
+                        bx, cols = edge(n_x, ix, dx)
+                        piece = blocks[by, bx]
+                        if dy:
+                            piece = piece[:, rows, :]
+                        if dx:
+                            piece = piece[:, :, cols]
+                        row.append(piece)
+                    grid.append(tuple(row))
+                pieces = tuple(grid)
+            tiles.append((pieces, int(y0), int(x0), plan.chunks[0][iy], plan.chunks[1][ix]))
     return tiles
+
+
+class PaddedTile:
+    """A tile with its halo, held as the 3 x 3 pieces of :func:`_tile_arrays` (or one padded array).
+
+    ``rows(r0, r1)`` gives the padded rows r0 .. r1 + 2 * halo (what pooling
+    output rows r0:r1 needs), copied from the pieces into a small reused
+    buffer that stays in cache; a padded array is just sliced.
+    """
+
+    def __init__(self, pieces, halo: int):
+        self.halo = halo
+        if isinstance(pieces, tuple):
+            self.grid = tuple(tuple(np.asarray(p) for p in row) for row in pieces)
+            center = self.grid[1][1]
+            t, ty, tx = center.shape
+            self.shape = (t, ty + 2 * halo, tx + 2 * halo)
+            self.dtype = center.dtype
+            self.padded = None
+        else:
+            self.grid = None
+            self.padded = np.asarray(pieces)
+            self.shape = self.padded.shape
+            self.dtype = self.padded.dtype
+        self._buf = None
+
+    def arrays(self):
+        """Every array holding the tile's values (for checks over all of them)."""
+        if self.grid is None:
+            return [self.padded]
+        return [p for row in self.grid for p in row]
+
+    def pooled_rows(self, r0: int, r1: int) -> np.ndarray:
+        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces."""
+        h = self.halo
+        t, _, width = self.shape
+        if self.grid is None:
+            pooled = preprocess.box_pool_rows(self.padded, h, r0, r1)
+        else:
+            pooled = preprocess.box_pool_rows(self.rows(r0, r1), h, 0, r1 - r0)
+        return pooled.reshape(t, (r1 - r0) * (width - 2 * h))
+
+    def rows(self, r0: int, r1: int) -> np.ndarray:
+        """(T, r1 - r0 + 2 halo, tx + 2 halo): padded rows r0 .. r1 + 2 halo - 1."""
+        h = self.halo
+        if self.grid is None:
+            return self.padded[:, r0:r1 + 2 * h]
+        t, _, width = self.shape
+        n = r1 - r0 + 2 * h
+        if self._buf is None or self._buf.shape[1] != n:
+            self._buf = np.empty((t, n, width), self.dtype)
+        out = self._buf
+        ty = self.shape[1] - 2 * h
+        # padded row p comes from the top strip (p < h), the tile (h <= p < h + ty) or the bottom strip
+        for band, lo, hi in ((0, 0, h), (1, h, h + ty), (2, h + ty, ty + 2 * h)):
+            a, b = max(r0, lo), min(r0 + n, hi)
+            if a >= b:
+                continue
+            left, mid, right = self.grid[band]
+            dst = slice(a - r0, b - r0)
+            src = slice(a - lo, b - lo)
+            out[:, dst, :h] = left[:, src]
+            out[:, dst, h:width - h] = mid[:, src]
+            out[:, dst, width - h:] = right[:, src]
+        return out
 
 
 # ------------------------------------------------------------------ kernels
@@ -182,7 +280,9 @@ def _kernel(fn):
 def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
-    The tile is pooled and transformed one band of rows at a time (about
+    ``block`` is the tile's 3 x 3 pieces from :func:`_tile_arrays` or one
+    array padded by ``halo`` on each side. The tile is pooled and transformed
+    one band of rows at a time (about
     ``spectral.FFT_BLOCK_COLUMNS`` pixels), so a band's traces stay in cache
     from pooling to peak search. Traces are not detrended in time: the
     spectral kernel removes the trend in the frequency domain, the Gram bins
@@ -194,14 +294,14 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     ids), ``bin_sums`` (T, n_bins) float32 and ``bin_counts`` for the Gram
     matrix.
     """
-    if np.issubdtype(np.asarray(block).dtype, np.floating) and not np.isfinite(block).all():
-        bad = np.nonzero(~np.isfinite(block).all(axis=(1, 2)))[0]
+    tile = PaddedTile(block, halo)
+    if np.issubdtype(tile.dtype, np.floating) and not all(np.isfinite(a).all() for a in tile.arrays()):
+        bad = np.unique(np.concatenate([np.nonzero(~np.isfinite(a).all(axis=(1, 2)))[0] for a in tile.arrays()]))
         raise InputError(
             f"the stack holds NaN or infinite values (frames {bad[:5].tolist()}{' ...' if bad.size > 5 else ''} "
             f"near pixel y={y0}, x={x0}); rhythmap needs finite intensities. Replace or drop those frames "
             "(e.g. interpolate them from their neighbours) and run again.")
-    block = np.asarray(block)
-    t, hy, hx = block.shape
+    t, hy, hx = tile.shape
     ty, tx = hy - 2 * halo, hx - 2 * halo
     maps = np.empty((len(PASS1_KEYS), ty, tx), np.float32)
     bins = None if gram_bin is None else _TileBins(t, ty, tx, y0, x0, gram_bin)
@@ -209,7 +309,7 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     band_rows = max(1, spectral.FFT_BLOCK_COLUMNS // tx)
     for r0 in range(0, ty, band_rows):
         r1 = min(ty, r0 + band_rows)
-        traces = preprocess.box_pool_rows(block, halo, r0, r1).reshape(t, (r1 - r0) * tx)
+        traces = tile.pooled_rows(r0, r1)
         out = kernel.maps(traces)
         maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
         if bins is not None:
@@ -262,6 +362,24 @@ PASS1_KEYS = spectral.MAP_KEYS
 PROJECT_STEP_PX = 2048
 
 
+def _project(stacked, block) -> np.ndarray:
+    """``stacked @ block`` over time for a (T, a, b) block of any number type: (R, a, b) float32.
+
+    Converted to float32 ``PROJECT_STEP_PX`` pixels at a time in one reused
+    buffer, so no float copy of the whole block is made.
+    """
+    t, a, b = block.shape
+    raw = np.ascontiguousarray(block).reshape(t, a * b)
+    proj = np.empty((stacked.shape[0], a * b), np.float32)
+    buf = np.empty((t, min(PROJECT_STEP_PX, a * b)), np.float32)
+    for p0 in range(0, a * b, PROJECT_STEP_PX):
+        p1 = min(a * b, p0 + PROJECT_STEP_PX)
+        part = buf[:, :p1 - p0]
+        np.copyto(part, raw[:, p0:p1], casting="unsafe")
+        np.matmul(stacked, part, out=proj[:, p0:p1])
+    return proj.reshape(-1, a, b)
+
+
 @_kernel
 def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     """Pass 2 on one tile: lock-in phase and coherence of every pixel against its region's reference.
@@ -270,28 +388,28 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
     (largest) region's reference, and no phase. The lock-in bases have the
     trend components projected out, so B x equals B times the detrended x.
     """
-    t, hy, hx = block.shape
+    tile = PaddedTile(block, halo)
+    t, hy, hx = tile.shape
     ty, tx = hy - 2 * halo, hx - 2 * halo
-    raw = np.ascontiguousarray(block).reshape(t, hy * hx)
     lab = labels.ravel()
     present = np.unique(lab).tolist()
     refs = sorted({label if label in lockin_bases else dominant for label in present})
     # Lock-in is linear in the trace: project every pixel (halo included) on
     # every basis needed here, then pool the few projected rows instead of every frame.
     stacked = np.concatenate([lockin_bases[r] for r in refs])
-    proj = np.empty((stacked.shape[0], hy * hx), np.float32)
-    buf = np.empty((t, min(PROJECT_STEP_PX, hy * hx)), np.float32)
-    for p0 in range(0, hy * hx, PROJECT_STEP_PX):
-        p1 = min(hy * hx, p0 + PROJECT_STEP_PX)
-        part = buf[:, :p1 - p0]
-        np.copyto(part, raw[:, p0:p1], casting="unsafe")
-        np.matmul(stacked, part, out=proj[:, p0:p1])
+    if tile.grid is None:
+        proj = _project(stacked, tile.padded)
+    else:
+        proj = np.empty((stacked.shape[0], hy, hx), np.float32)
+        spans = ((0, halo), (halo, halo + ty), (halo + ty, hy)), ((0, halo), (halo, halo + tx), (halo + tx, hx))
+        for (r0, r1), row in zip(spans[0], tile.grid):
+            for (c0, c1), piece in zip(spans[1], row):
+                proj[:, r0:r1, c0:c1] = _project(stacked, piece)
     pooled_by_ref: dict = {}
     start = 0
     for ref_label in refs:
         n_rows = lockin_bases[ref_label].shape[0]
-        rows = proj[start:start + n_rows].reshape(n_rows, hy, hx)
-        pooled_by_ref[ref_label] = preprocess.box_pool(rows, halo).reshape(n_rows, ty * tx)
+        pooled_by_ref[ref_label] = preprocess.box_pool(proj[start:start + n_rows], halo).reshape(n_rows, ty * tx)
         start += n_rows
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
