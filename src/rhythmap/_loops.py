@@ -215,18 +215,30 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
 
 
 @numba.jit(**_JIT)
-def add_traces_to_bins(traces, trace_bin, sums):
-    """``sums[:, b] += traces[:, j]`` for every trace j with ``trace_bin[j] = b >= 0`` (in trace order).
+def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
+    """Add a band of rows of traces to square bins: ``sums[:, row_bin[r] * n_bin_cols + col_bin[x]]``
+    += weight * trace, for the band's pixels (r, x) (weight 1 for a detected pixel, 0 otherwise).
 
-    ``traces`` is (T, n) and ``sums`` (T, n_bins).
+    ``traces`` is (T, rows, width), ``weight`` (rows, width) float32,
+    ``row_bin`` (rows,) non-decreasing, ``col_bin`` (width,). Rows of one bin
+    row are summed first with the pixels innermost (vectorised), then each
+    column's sum goes to its bin.
     """
-    n_t, n = traces.shape
+    n_t, n_rows, width = traces.shape
+    acc = np.empty(width, np.float32)
     for t in range(n_t):
-        for j in range(n):
-            b = trace_bin[j]
-            if b >= 0:
-                sums[t, b] += traces[t, j]
-
+        r = 0
+        while r < n_rows:
+            br = row_bin[r]
+            for x in range(width):
+                acc[x] = 0.0
+            while r < n_rows and row_bin[r] == br:
+                for x in range(width):
+                    acc[x] += traces[t, r, x] * weight[r, x]
+                r += 1
+            first = br * n_bin_cols
+            for x in range(width):
+                sums[t, first + col_bin[x]] += acc[x]
 
 def warm_up() -> None:
     """Compile (or load from the cache) every loop for the common input types.
@@ -243,7 +255,8 @@ def warm_up() -> None:
     noise_ordinates(power, 1, np.empty((3, 2), np.float32))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32))
-    add_traces_to_bins(np.zeros((2, 3), np.float32), np.array([0, -1, 0]), np.zeros((2, 1), np.float32))
+    add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),
+                     np.array([0, 0, 1]), 2, np.zeros((2, 2), np.float32))
     for dtype in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
         box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
 

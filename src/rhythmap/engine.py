@@ -340,9 +340,10 @@ class _TileBins:
 
     def add(self, traces, detected, r0, r1):
         """Add the band of rows r0:r1 ((T, (r1 - r0) * tx) traces, their detection flags)."""
+        rows = r1 - r0
+        _loops.add_band_to_bins(traces.reshape(-1, rows, self.tx), detected.astype(np.float32).reshape(rows, self.tx),
+                                self.row_bin[r0:r1], self.col_bin, self.nx, self.sums)
         local = (self.row_bin[r0:r1, None] * self.nx + self.col_bin[None, :]).ravel()
-        local = np.where(detected, local, -1)
-        _loops.add_traces_to_bins(traces, local, self.sums)
         np.add.at(self.counts, local[detected], 1)
 
     def finish(self):
