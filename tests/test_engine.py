@@ -187,3 +187,19 @@ def test_tile_bins_hold_the_sums_of_the_detected_pooled_traces(rng):
     maps_only = engine.maps_tile_kernel(block, y0, x0, halo=1, plan=plan, basis=q, gram_bin=None)
     assert "bins" not in maps_only
     np.testing.assert_array_equal(maps_only["maps"], out["maps"])
+
+
+@pytest.mark.parametrize("dtype", [np.uint16, np.float32])
+def test_pooling_from_pieces_equals_pooling_the_padded_tile(rng, dtype):
+    """The kernels read a tile and its neighbours' strips where they lie; the numbers must be
+    exactly those of pooling one padded array."""
+    h, ty, tx = 2, 9, 13
+    padded = (rng.random((5, ty + 2 * h, tx + 2 * h)) * 1000).astype(dtype)
+    rows = [slice(0, h), slice(h, h + ty), slice(h + ty, None)]
+    cols = [slice(0, h), slice(h, h + tx), slice(h + tx, None)]
+    pieces = tuple(tuple(padded[:, r, c] for c in cols) for r in rows)
+    whole = engine.PaddedTile(padded, h)
+    split = engine.PaddedTile(pieces, h)
+    assert split.shape == whole.shape
+    for r0, r1 in [(0, 4), (4, 9), (0, 9)]:
+        np.testing.assert_array_equal(split.pooled_rows(r0, r1), whole.pooled_rows(r0, r1))
