@@ -25,25 +25,6 @@ import numpy as np
 _JIT = {"nopython": True, "nogil": True, "cache": True}
 
 
-@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
-def _pooled_row(block, t, y, radius, colsum, rowsum):
-    """Fill ``rowsum`` with the box sums of output row y (padded-block row y + radius) of frame t."""
-    side = 2 * radius + 1
-    width = colsum.shape[0]
-    nx = rowsum.shape[0]
-    # loops over whole rows innermost, so they compile to vector instructions
-    for c in range(width):
-        colsum[c] = np.float32(block[t, y, c])
-    for dy in range(1, side):
-        for c in range(width):
-            colsum[c] += np.float32(block[t, y + dy, c])
-    for x in range(nx):
-        rowsum[x] = colsum[x]
-    for dx in range(1, side):
-        for x in range(nx):
-            rowsum[x] += colsum[x + dx]
-
-
 @numba.jit(**_JIT)
 def box_pool_rows(block, radius, y_start, y_stop, out):
     """Box mean of ``block`` (T, Y + 2r, X + 2r) for output rows ``y_start:y_stop``.
@@ -52,14 +33,25 @@ def box_pool_rows(block, radius, y_start, y_stop, out):
     the 2r+1 rows of each padded column are summed first (top to bottom),
     then the 2r+1 column sums (left to right), then scaled by 1/(2r+1)^2.
     """
+    side = 2 * radius + 1
     width = block.shape[2]
     nx = width - 2 * radius
-    scale = np.float32(1.0 / ((2 * radius + 1) ** 2))
+    scale = np.float32(1.0 / (side * side))
     colsum = np.empty(width, np.float32)
     rowsum = np.empty(nx, np.float32)
     for t in range(block.shape[0]):
         for y in range(y_start, y_stop):
-            _pooled_row(block, t, y, radius, colsum, rowsum)
+            # loops over whole rows innermost, so they compile to vector instructions
+            for c in range(width):
+                colsum[c] = np.float32(block[t, y, c])
+            for dy in range(1, side):
+                for c in range(width):
+                    colsum[c] += np.float32(block[t, y + dy, c])
+            for x in range(nx):
+                rowsum[x] = colsum[x]
+            for dx in range(1, side):
+                for x in range(nx):
+                    rowsum[x] += colsum[x + dx]
             for x in range(nx):
                 out[t, y - y_start, x] = rowsum[x] * scale
 

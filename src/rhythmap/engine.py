@@ -177,16 +177,25 @@ def _tile_arrays(data: da.Array, plan: TilePlan):
                     by, rows = edge(n_y, iy, dy)
                     for dx in (-1, 0, 1):
                         bx, cols = edge(n_x, ix, dx)
-                        piece = blocks[by, bx]
-                        if dy:
-                            piece = piece[:, rows, :]
-                        if dx:
-                            piece = piece[:, :, cols]
-                        row.append(piece)
+                        if dy or dx:
+                            row.append(_strip_task(blocks[by, bx], rows, cols))
+                        else:
+                            row.append(blocks[by, bx])
                     grid.append(tuple(row))
                 pieces = tuple(grid)
             tiles.append((pieces, int(y0), int(x0), plan.chunks[0][iy], plan.chunks[1][ix]))
     return tiles
+
+
+def _strip(block, rows, cols):
+    """A copy (not a view) of a block's edge strip: a view would keep the whole
+    neighbouring block in memory until this tile is done."""
+    return np.array(np.asarray(block)[:, rows][:, :, cols])
+
+
+def _strip_task(block, rows, cols):
+    key = f"rhythmap-strip-{dask.base.tokenize(block, rows, cols)}"
+    return dask.delayed(_strip, pure=True)(block, rows, cols, dask_key_name=key)
 
 
 class PaddedTile:
