@@ -57,6 +57,48 @@ def box_pool_rows(block, radius, y_start, y_stop, out):
 
 
 @numba.jit(**_JIT)
+def box_pool_rows_split(left, middle, right, radius, y_start, y_stop, out):
+    """:func:`box_pool_rows` of a block held as three column pieces (left strip, centre, right strip).
+
+    ``middle`` is (T, Y, X), the strips (T, Y, r); output rows y_start:y_stop
+    pool rows y .. y + 2r of the pieces, (T, y_stop - y_start, X) float32, in
+    the same arithmetic order as :func:`box_pool_rows` on the assembled block.
+    The engine uses it for the rows of a tile away from its top and bottom
+    edges, which then need no copy.
+    """
+    side = 2 * radius + 1
+    nx = middle.shape[2]
+    scale = np.float32(1.0 / (side * side))
+    colsum = np.empty(nx + 2 * radius, np.float32)
+    col_left = colsum[:radius]
+    col_mid = colsum[radius:radius + nx]
+    col_right = colsum[radius + nx:]
+    rowsum = np.empty(nx, np.float32)
+    for t in range(middle.shape[0]):
+        for y in range(y_start, y_stop):
+            for c in range(radius):
+                col_left[c] = np.float32(left[t, y, c])
+            for c in range(nx):
+                col_mid[c] = np.float32(middle[t, y, c])
+            for c in range(radius):
+                col_right[c] = np.float32(right[t, y, c])
+            for dy in range(1, side):
+                for c in range(radius):
+                    col_left[c] += np.float32(left[t, y + dy, c])
+                for c in range(nx):
+                    col_mid[c] += np.float32(middle[t, y + dy, c])
+                for c in range(radius):
+                    col_right[c] += np.float32(right[t, y + dy, c])
+            for x in range(nx):
+                rowsum[x] = colsum[x]
+            for dx in range(1, side):
+                for x in range(nx):
+                    rowsum[x] += colsum[x + dx]
+            for x in range(nx):
+                out[t, y - y_start, x] = rowsum[x] * scale
+
+
+@numba.jit(**_JIT)
 def windowed_power(spec, n_frames, coef, trend_re, trend_im, power, dc):
     """Hann-windowed, detrended periodogram of traces from their plain rFFT.
 
@@ -251,4 +293,6 @@ def warm_up() -> None:
                      np.array([0, 0, 1]), 2, np.zeros((2, 2), np.float32))
     for dtype in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
         box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
+        box_pool_rows_split(np.zeros((2, 4, 1), dtype), np.zeros((2, 4, 2), dtype), np.zeros((2, 4, 1), dtype), 1,
+                            0, 2, np.empty((2, 2, 2), np.float32))
 

@@ -201,16 +201,19 @@ def _strip_task(block, rows, cols):
 class PaddedTile:
     """A tile with its halo, held as the 3 x 3 pieces of :func:`_tile_arrays` (or one padded array).
 
-    ``rows(r0, r1)`` gives the padded rows r0 .. r1 + 2 * halo (what pooling
-    output rows r0:r1 needs), copied from the pieces into a small reused
-    buffer that stays in cache; a padded array is just sliced.
+    :meth:`pooled_rows` pools a band of output rows: inside the tile straight
+    from the middle row of pieces (left strip, tile, right strip); for the
+    bands that reach the top or bottom strip, from the padded rows copied into
+    a small buffer (:meth:`rows`). Both give exactly the numbers of pooling
+    one padded array.
     """
 
     def __init__(self, pieces, halo: int):
         self.halo = halo
         if isinstance(pieces, tuple):
-            self.grid = tuple(tuple(np.asarray(p) for p in row) for row in pieces)
-            center = self.grid[1][1]
+            center = np.asarray(pieces[1][1])
+            # one array type for the compiled loops: C order, the tile's dtype (strips are small)
+            self.grid = tuple(tuple(np.ascontiguousarray(p, dtype=center.dtype) for p in row) for row in pieces)
             t, ty, tx = center.shape
             self.shape = (t, ty + 2 * halo, tx + 2 * halo)
             self.dtype = center.dtype
@@ -232,9 +235,14 @@ class PaddedTile:
         """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces."""
         h = self.halo
         t, _, width = self.shape
+        ty = self.shape[1] - 2 * h
         if self.grid is None:
             pooled = preprocess.box_pool_rows(self.padded, h, r0, r1)
-        else:
+        elif r0 >= h and r1 + h <= ty:  # rows inside the tile: read the middle pieces where they lie
+            pooled = np.empty((t, r1 - r0, width - 2 * h), np.float32)
+            left, middle, right = self.grid[1]
+            _loops.box_pool_rows_split(left, middle, right, h, r0 - h, r1 - h, pooled)
+        else:  # rows reaching the top or bottom strip: copy them into one small buffer first
             pooled = preprocess.box_pool_rows(self.rows(r0, r1), h, 0, r1 - r0)
         return pooled.reshape(t, (r1 - r0) * (width - 2 * h))
 
