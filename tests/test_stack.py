@@ -182,3 +182,27 @@ def test_truncated_tiff_is_a_clear_error(tmp_path, rng, compression):
     with pytest.raises(InputError, match="t.tif"):
         st = open_stack(p)
         rhythmap.analyze(st, (30, 180))
+
+
+def test_convert_decodes_frame_wise_pieces_once(tmp_path, rng):
+    """A source stored in whole-frame pieces (like a compressed TIFF page in one strip) is decoded
+    once, not once per 128-row band, and converts exactly; the temporary file is removed."""
+    import threading
+
+    import rhythmap
+    from rhythmap.convert import convert_stack
+
+    frames = rng.integers(0, 4000, (30, 300, 70), dtype=np.uint16)
+    decoded = []
+    lock = threading.Lock()
+
+    def decode(block, block_info=None):
+        with lock:
+            decoded.append(block_info[0]["chunk-location"])
+        return block
+
+    data = da.from_array(frames, chunks=(1, 300, 70)).map_blocks(decode, dtype=frames.dtype)
+    out = convert_stack(rhythmap.open_stack(data, frame_interval_s=0.05), tmp_path / "c.ome.zarr")
+    assert sorted(decoded) == sorted(set(decoded)) and len(decoded) == 30  # each frame once (3 bands)
+    np.testing.assert_array_equal(rhythmap.open_stack(out).data.compute(), frames)
+    assert [p.name for p in tmp_path.iterdir()] == ["c.ome.zarr"]

@@ -9,6 +9,7 @@ when complete.
 
 from __future__ import annotations
 
+import uuid
 from pathlib import Path
 
 import numpy as np
@@ -19,6 +20,9 @@ from .errors import ResultExistsError
 from .stack import Stack, open_stack
 
 CHUNK_YX = 128
+
+#: Frames decoded at once into the spill file (bytes), see :func:`convert_stack`.
+SPILL_BLOCK_BYTES = 256 * 2**20
 
 
 def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, channel=None, plane=None,
@@ -47,7 +51,12 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     -----
     The stack is read one band of 128 image rows at a time (all frames of the
     band), so memory stays at T x 128 x X pixels and every output chunk is
-    written once.
+    written once. A source stored frame by frame in pieces taller than a band
+    (a compressed TIFF page in one strip, large TIFF tiles, Zarr chunks of
+    whole frames) would be decoded again for every band; such a source is
+    first decoded once, a block of frames at a time, into an uncompressed
+    temporary file beside ``out`` (the stack's size on disk, removed at the
+    end), and the bands are read from that.
     """
     stack = source if isinstance(source, Stack) else open_stack(
         source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
@@ -58,12 +67,42 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
                       protect=[stack.source] if stack.source != "array" else [])
     t, y, x = stack.shape
     dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
-    with atomic_folder(dest, overwrite=overwrite, create=False) as tmp:
-        arr = omezarr.create_stack(tmp, (t, y, x), dtype, frame_interval_s=stack.frame_interval_s,
-                                   pixel_size_um=stack.pixel_size_um, chunk_yx=CHUNK_YX)
-        for y0 in range(0, y, CHUNK_YX):
-            band = np.asarray(stack.data[:, y0:y0 + CHUNK_YX, :].compute(scheduler="threads"))
-            arr[:, y0:y0 + band.shape[1], :] = band.astype(dtype, copy=False)
-            if progress is not None:
-                progress(min(y, y0 + CHUNK_YX), y)
+    spill = None
+    try:
+        with atomic_folder(dest, overwrite=overwrite, create=False) as tmp:
+            arr = omezarr.create_stack(tmp, (t, y, x), dtype, frame_interval_s=stack.frame_interval_s,
+                                       pixel_size_um=stack.pixel_size_um, chunk_yx=CHUNK_YX)
+            source = stack.data
+            if _decoded_per_band(stack.data):
+                spill = dest.parent / f".{dest.name}-frames.partial-{uuid.uuid4().hex[:8]}"
+                source = _decode_once(stack.data, spill)
+            for y0 in range(0, y, CHUNK_YX):
+                band = source[:, y0:y0 + CHUNK_YX, :]
+                band = np.asarray(band if spill is not None else band.compute(scheduler="threads"))
+                arr[:, y0:y0 + band.shape[1], :] = band.astype(dtype, copy=False)
+                if progress is not None:
+                    progress(min(y, y0 + CHUNK_YX), y)
+            source = band = None  # let go of the spill file's memory map before it is removed
+    finally:
+        if spill is not None:
+            spill.unlink(missing_ok=True)
     return dest
+
+
+def _decoded_per_band(data) -> bool:
+    """Whether reading ``data`` band by band would decode its pieces more than once:
+    its chunks split the time axis and are taller than a band."""
+    return len(data.chunks[0]) > 1 and max(data.chunks[1]) > CHUNK_YX
+
+
+def _decode_once(data, path: Path) -> np.ndarray:
+    """Decode ``data`` (T, Y, X) into a raw memory-mapped file at ``path``, a block of frames at a time."""
+    t, y, x = data.shape
+    out = np.memmap(path, dtype=data.dtype, mode="w+", shape=(t, y, x))
+    chunk = int(data.chunks[0][0])
+    frames = max(1, SPILL_BLOCK_BYTES // max(1, y * x * data.dtype.itemsize))
+    step = max(1, frames // chunk) * chunk  # whole source chunks, each decoded once
+    for t0 in range(0, t, step):
+        out[t0:t0 + step] = data[t0:t0 + step].compute(scheduler="threads")
+    out.flush()
+    return out
