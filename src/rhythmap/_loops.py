@@ -25,6 +25,20 @@ import numpy as np
 _JIT = {"nopython": True, "nogil": True, "cache": True}
 
 
+@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
+def _sum_across(colsum, side, scale, rowsum, out, t, row):
+    """The second half of box pooling: ``side`` neighbouring column sums added left to right, scaled,
+    written to ``out[t, row]``."""
+    nx = rowsum.shape[0]
+    for x in range(nx):
+        rowsum[x] = colsum[x]
+    for dx in range(1, side):
+        for x in range(nx):
+            rowsum[x] += colsum[x + dx]
+    for x in range(nx):
+        out[t, row, x] = rowsum[x] * scale
+
+
 @numba.jit(**_JIT)
 def box_pool_rows(block, radius, y_start, y_stop, out):
     """Box mean of ``block`` (T, Y + 2r, X + 2r) for output rows ``y_start:y_stop``.
@@ -47,13 +61,7 @@ def box_pool_rows(block, radius, y_start, y_stop, out):
             for dy in range(1, side):
                 for c in range(width):
                     colsum[c] += np.float32(block[t, y + dy, c])
-            for x in range(nx):
-                rowsum[x] = colsum[x]
-            for dx in range(1, side):
-                for x in range(nx):
-                    rowsum[x] += colsum[x + dx]
-            for x in range(nx):
-                out[t, y - y_start, x] = rowsum[x] * scale
+            _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
 
 
 @numba.jit(**_JIT)
@@ -89,13 +97,7 @@ def box_pool_rows_split(left, middle, right, radius, y_start, y_stop, out):
                     col_mid[c] += np.float32(middle[t, y + dy, c])
                 for c in range(radius):
                     col_right[c] += np.float32(right[t, y + dy, c])
-            for x in range(nx):
-                rowsum[x] = colsum[x]
-            for dx in range(1, side):
-                for x in range(nx):
-                    rowsum[x] += colsum[x + dx]
-            for x in range(nx):
-                out[t, y - y_start, x] = rowsum[x] * scale
+            _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
 
 
 @numba.jit(**_JIT)
