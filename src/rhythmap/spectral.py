@@ -1,11 +1,13 @@
-"""Per-pixel spectral kernels on (T, n) blocks of detrended traces.
+"""Per-pixel spectral kernels on (T, n) blocks of traces.
 
-For each trace: a Hann-windowed periodogram, its highest peak inside the
+For each trace: a Hann-windowed periodogram with the slow trend removed, its highest peak inside the
 user's rate band (with an octave check so a spiky beat is not reported at a
 harmonic), the peak refined below one bin by a parabola through the log
 magnitudes, the amplitude of that component in input units, a periodicity
 score, and a detection decision with a stated false-alarm probability on white
-noise. Pure numpy/scipy; the engine feeds it tiles.
+noise. One scipy rFFT per block; the window, the trend removal and the
+per-trace search run in compiled loops (:mod:`rhythmap._loops`). The engine
+feeds it tiles, one band of rows at a time.
 """
 
 from __future__ import annotations
