@@ -150,22 +150,32 @@ def _split(n, size, min_last=1):
     return tuple(parts)
 
 
-def _tile_arrays(data: da.Array, plan: TilePlan):
-    """The tiles of a pass: ``(pieces, y0, x0, ty, tx)`` per tile.
+def _pass_tasks(data: da.Array, tiles: TilePlan, fn, tile_kwargs=None, **kwargs) -> list:
+    """One delayed ``fn(pieces, y0, x0, **kwargs)`` per tile of a pass, built as one plain graph.
 
-    ``pieces`` is a 3 x 3 grid (rows top, middle, bottom) of delayed arrays:
-    the tile itself in the middle and, around it, the ``halo``-wide strips and
-    corners of its neighbours, with the image's edge rows and columns
-    repeated where there is no neighbour. The kernels read the pieces where
-    they lie (:class:`PaddedTile`), instead of a halo-padded copy of every
-    tile, which cost a copy of the whole stack per pass.
+    ``pieces`` is a 3 x 3 grid (rows top, middle, bottom): the tile itself in
+    the middle and, around it, the ``halo``-wide strips and corners of its
+    neighbours, with the image's edge rows and columns repeated where there
+    is no neighbour. The kernels read the pieces where they lie
+    (:class:`PaddedTile`) instead of a halo-padded copy of every tile, which
+    cost a copy of the whole stack per pass. ``tile_kwargs(y0, x0, ty, tx)``
+    adds keyword arguments of one tile. Tile keys start with
+    ``TILE_TASK_PREFIX`` so progress can count them. The graph is written
+    directly (not through ``dask.delayed`` calls, which cost ~5 ms a tile).
     """
+    import functools
+
+    from dask.delayed import Delayed
+
     t = data.shape[0]
-    blocks = data.rechunk((t,) + plan.chunks).to_delayed()[0]
-    h = plan.halo
-    n_y, n_x = len(plan.chunks[0]), len(plan.chunks[1])
-    y_offsets = np.concatenate([[0], np.cumsum(plan.chunks[0])[:-1]])
-    x_offsets = np.concatenate([[0], np.cumsum(plan.chunks[1])[:-1]])
+    x = data.rechunk((t,) + tiles.chunks)
+    graph = dict(x.__dask_graph__())
+    blocks = x.__dask_keys__()[0]
+    h = tiles.halo
+    n_y, n_x = len(tiles.chunks[0]), len(tiles.chunks[1])
+    y_offsets = np.concatenate([[0], np.cumsum(tiles.chunks[0])[:-1]])
+    x_offsets = np.concatenate([[0], np.cumsum(tiles.chunks[1])[:-1]])
+    token = dask.base.tokenize(x.name, fn.__name__, kwargs)
 
     def edge(n_blocks, i, d):
         """Which block and which of its rows (or columns) form the piece in direction d (-1, 0, 1)."""
@@ -176,26 +186,31 @@ def _tile_arrays(data: da.Array, plan: TilePlan):
             return j, (slice(-h, None) if d < 0 else slice(0, h))
         return i, ([0] * h if d < 0 else [-1] * h)  # no neighbour: repeat the edge
 
-    tiles = []
+    tasks = []
     for iy, y0 in enumerate(y_offsets):
         for ix, x0 in enumerate(x_offsets):
+            y0, x0, ty, tx = int(y0), int(x0), tiles.chunks[0][iy], tiles.chunks[1][ix]
             if h == 0:
-                pieces = blocks[iy, ix]
+                pieces = blocks[iy][ix]
             else:
-                grid = []
+                pieces = []
                 for dy in (-1, 0, 1):
                     row = []
                     by, rows = edge(n_y, iy, dy)
                     for dx in (-1, 0, 1):
                         bx, cols = edge(n_x, ix, dx)
                         if dy or dx:
-                            row.append(_strip_task(blocks[by, bx], rows, cols))
+                            strip = (f"rhythmap-strip-{token}", iy, ix, dy + 1, dx + 1)
+                            graph[strip] = (_strip, blocks[by][bx], rows, cols)
+                            row.append(strip)
                         else:
-                            row.append(blocks[by, bx])
-                    grid.append(tuple(row))
-                pieces = tuple(grid)
-            tiles.append((pieces, int(y0), int(x0), plan.chunks[0][iy], plan.chunks[1][ix]))
-    return tiles
+                            row.append(blocks[by][bx])
+                    pieces.append(row)
+            extra = tile_kwargs(y0, x0, ty, tx) if tile_kwargs else {}
+            key = f"{TILE_TASK_PREFIX}-{fn.__name__}-{token}-{iy}-{ix}"
+            graph[key] = (functools.partial(fn, **kwargs, **extra), pieces, y0, x0)
+            tasks.append(key)
+    return [Delayed(key, graph) for key in tasks]
 
 
 def _strip(block, rows, cols):
@@ -204,13 +219,8 @@ def _strip(block, rows, cols):
     return np.array(np.asarray(block)[:, rows][:, :, cols])
 
 
-def _strip_task(block, rows, cols):
-    key = f"rhythmap-strip-{dask.base.tokenize(block, rows, cols)}"
-    return dask.delayed(_strip, pure=True)(block, rows, cols, dask_key_name=key)
-
-
 class PaddedTile:
-    """A tile with its halo, held as the 3 x 3 pieces of :func:`_tile_arrays` (or one padded array).
+    """A tile with its halo, held as the 3 x 3 pieces of :func:`_pass_tasks` (or one padded array).
 
     :meth:`pooled_rows` pools a band of output rows: inside the tile straight
     from the middle row of pieces (left strip, tile, right strip); for the
@@ -221,7 +231,7 @@ class PaddedTile:
 
     def __init__(self, pieces, halo: int):
         self.halo = halo
-        if isinstance(pieces, tuple):
+        if isinstance(pieces, (tuple, list)):
             center = np.asarray(pieces[1][1])
             # one array type for the compiled loops: C order, the tile's dtype (strips are small)
             self.grid = tuple(tuple(np.ascontiguousarray(p, dtype=center.dtype) for p in row) for row in pieces)
@@ -492,12 +502,6 @@ def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | 
         return list(dask.compute(*tasks, scheduler="threads", callbacks=[_Ticks()._callback]))
 
 
-def _tile_task(fn, block, y0, x0, **kwargs):
-    """A delayed kernel call whose key starts with TILE_TASK_PREFIX, so progress can count it."""
-    key = f"{TILE_TASK_PREFIX}-{fn.__name__}-{dask.base.tokenize(block, y0, x0, kwargs)}"
-    return dask.delayed(fn, pure=True)(block, y0, x0, dask_key_name=key, **kwargs)
-
-
 # ------------------------------------------------------------------ public entry points
 def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = None,
                  **options) -> Iterator[Progress]:
@@ -543,8 +547,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     yield Progress(0, total, "maps")
     # a maps-only run needs no Gram bins
     tile_bin = None if opts["maps_only"] else gram_bin
-    tasks = [_tile_task(maps_tile_kernel, b, y0, x0, halo=halo, plan=plan, basis=basis, gram_bin=tile_bin)
-             for b, y0, x0, _, _ in _tile_arrays(stack.data, tiles_plan)]
+    tasks = _pass_tasks(stack.data, tiles_plan, maps_tile_kernel, halo=halo, plan=plan, basis=basis,
+                        gram_bin=tile_bin)
     results = yield from _drain(tasks, "maps", cancel, stack.source)
     timings["maps_pass_s"] = time.perf_counter() - t_start
 
@@ -621,9 +625,9 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
                  for label, th in thetas.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
         yield Progress(0, total, "phase")
-        tasks2 = [_tile_task(phase_tile_kernel, b, y0, x0, halo=halo,
-                             labels=labels[y0:y0 + ty, x0:x0 + tx], lockin_bases=bases, dominant=dominant)
-                  for b, y0, x0, ty, tx in _tile_arrays(stack.data, tiles_plan)]
+        tasks2 = _pass_tasks(stack.data, tiles_plan, phase_tile_kernel,
+                             lambda y0, x0, ty, tx: {"labels": labels[y0:y0 + ty, x0:x0 + tx]},
+                             halo=halo, lockin_bases=bases, dominant=dominant)
         results2 = yield from _drain(tasks2, "phase", cancel, stack.source)
         for r in results2:
             ty, tx = r["phase"].shape
