@@ -155,7 +155,9 @@ def test_event_loop_runs_during_a_run_and_cancel_adds_nothing(panel, qtbot):
     latency = time.perf_counter() - t_cancel
     print(f"cancel after tile {ticks[-1].done} of {ticks[-1].total}: run ended {latency * 1000:.0f} ms later")
     assert stopped == ["cancelled"]
-    assert ticks[-1].done < ticks[-1].total and ticks[-1].stage in ("maps", "references", "phase")
+    # stopped before the end: mid-stage, or at a stage boundary when the cancel lands as a stage ends
+    assert ticks[-1].stage in ("maps", "references", "phase")
+    assert ticks[-1].done < ticks[-1].total or ticks[-1].stage != "phase"
     qtbot.wait(300)
     assert len(viewer.layers) == n_before
     assert result_layers(viewer, "big") == []
