@@ -745,8 +745,8 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     driving: dict[str, str] = {}  # stack task key -> the worker it was sent to
 
     def least_busy_worker() -> str | None:
-        try:
-            workers = list(client.scheduler_info()["workers"])
+        try:  # asked of the scheduler each time (the client's cached view may not list them yet)
+            workers = list(client.nthreads())
         except Exception:  # noqa: BLE001 - no answer: let the scheduler choose
             return None
         if not workers:
