@@ -16,9 +16,11 @@ Pass 2 ("phase"): lock-in of every pixel against its region's reference.
 
 from __future__ import annotations
 
+import importlib
 import math
 import os
 import sys
+import threading
 import time
 import warnings
 from dataclasses import dataclass
@@ -544,6 +546,8 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
             "with `rhythmap convert STACK OUT.ome.zarr` and analyse the converted copy.", stacklevel=2)
     gram_bin = max(1, math.ceil(math.sqrt(y * x / opts["gram_max_pixels"])))
     total = tiles_plan.n_tiles
+    if not opts["maps_only"]:
+        _preload_later_stages()
     yield Progress(0, total, "maps")
     # a maps-only run needs no Gram bins
     tile_bin = None if opts["maps_only"] else gram_bin
@@ -688,6 +692,26 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     )
     yield Progress(total, total, "done")
     return result
+
+
+def _preload_later_stages() -> None:
+    """Import the libraries of the stages after the maps pass in a background thread.
+
+    ripser (which imports scikit-learn and scipy.stats) takes about a second to
+    import, and the references stage used to wait for it after the pass. The
+    tile threads of the pass spend nearly all their time outside the GIL, so
+    the import overlaps them at little cost. A failed import is left for the
+    stage itself to report.
+    """
+    def load():
+        for name in ("ripser", "skimage.restoration"):
+            try:
+                importlib.import_module(name)
+            except Exception:  # noqa: BLE001 - reported where it is used
+                pass
+
+    if "ripser" not in sys.modules:
+        threading.Thread(target=load, name="rhythmap-preload", daemon=True).start()
 
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.

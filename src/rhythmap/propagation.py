@@ -236,15 +236,24 @@ def region_propagation(delay_s, regions, periods: dict, pixel_size_um=None, fram
     h, w = regions.shape
     field = np.full((h, w, 2), np.nan)
     out = {}
+    boxes = ndi.find_objects(np.asarray(regions))
     for label, period in periods.items():
-        mask = regions == label
-        act = unwrap_delay(delay_s, mask, period)
+        if label > len(boxes) or boxes[label - 1] is None:
+            continue
+        # Everything below is local to the region: work on its bounding box
+        # (a neighbourhood fit only sees pixels inside the mask anyway).
+        ys, xs = boxes[label - 1]
+        box = (slice(ys.start, ys.stop), slice(xs.start, xs.stop))
+        mask = regions[box] == label
+        act = unwrap_delay(delay_s[box], mask, period)
         span = np.nanmax(act) - np.nanmin(act) if np.isfinite(act).any() else 0.0
         if frame_interval_s is not None and span < frame_interval_s:
             out[label] = {"model": "synchronous", "speed_um_s": np.nan, "direction_deg": np.nan,
                           "origin_yx": (np.nan, np.nan), "rms_s": np.nan}
             continue
         _, _, vel = velocity_from_activation(act, mask, pixel_size_um, radius)
-        field[mask] = vel[mask]
-        out[label] = fit_region(act, mask, pixel_size_um)
+        field[box][mask] = vel[mask]
+        fit = fit_region(act, mask, pixel_size_um)
+        oy, ox = fit["origin_yx"]
+        out[label] = {**fit, "origin_yx": (oy + ys.start, ox + xs.start)}
     return out, field
