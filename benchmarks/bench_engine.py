@@ -89,7 +89,7 @@ def step(name: str, store: str) -> dict:
     elif name == "topology":
         # Everything after the Gram pass for T = 1000 frames: G = X X^T of the capped
         # bin traces (20 000, the default cap), sliding-window distances, persistence
-        # on 300 landmarks, circular coordinates, beats.
+        # on 200 landmarks (the default), circular coordinates, beats.
         from rhythmap.rhythm import region_reference
 
         rng = np.random.default_rng(1)

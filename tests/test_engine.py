@@ -44,6 +44,12 @@ def test_same_numbers_for_any_chunking_and_tile_size(well):
     for r in results[1:]:
         np.testing.assert_allclose(r.rate_bpm, results[0].rate_bpm, rtol=2e-5, equal_nan=True)
         np.testing.assert_allclose(r.amplitude, results[0].amplitude, rtol=2e-5, equal_nan=True)
+        # the phase stage (from the kept spectra) does not depend on the tiles either
+        assert r.parameters["phase_source"].startswith("kept spectra")
+        np.testing.assert_array_equal(np.isnan(r.phase_rad), np.isnan(results[0].phase_rad))
+        ok = np.isfinite(r.phase_rad)
+        assert np.abs(np.angle(np.exp(1j * (r.phase_rad[ok] - results[0].phase_rad[ok])))).max() < 1e-4
+        np.testing.assert_allclose(r.coherence, results[0].coherence, atol=1e-5)
 
 
 def test_tile_plan_follows_the_memory_budget():

@@ -16,6 +16,7 @@ Pass 2 ("phase"): lock-in of every pixel against its region's reference.
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import math
 import os
@@ -294,6 +295,110 @@ class PaddedTile:
         return out
 
 
+# ------------------------------------------------------------------ kept spectra
+@dataclass(frozen=True)
+class KeptSpectra:
+    """A temporary file holding, for every pixel, bins ``band`` of its detrended spectrum.
+
+    The maps pass writes each tile's block (2, n_bins, ty * tx) float32 (real
+    parts, then imaginary parts) at its own offset; the phase stage reads it
+    back instead of reading (and pooling, and detrending) the stack again.
+    Tiles are laid out row of tiles by row of tiles, so a tile at (y0, x0)
+    of height ty starts at pixel y0 * width + x0 * ty. Plain positioned
+    reads and writes: any thread or process on this machine may use it, and
+    it is held by the page cache, not by the process.
+    """
+
+    path: str
+    band: tuple[int, int]
+    width: int
+
+    @property
+    def n_bins(self) -> int:
+        return self.band[1] - self.band[0]
+
+    def offset(self, y0: int, x0: int, ty: int) -> int:
+        """Byte offset of the tile at (y0, x0) of height ty."""
+        return 2 * self.n_bins * 4 * (y0 * self.width + x0 * ty)
+
+    def write(self, offset: int, block: np.ndarray) -> None:
+        view = memoryview(np.ascontiguousarray(block, np.float32)).cast("B")
+        fd = os.open(self.path, os.O_WRONLY)
+        try:
+            done = 0
+            while done < len(view):
+                done += os.pwrite(fd, view[done:], offset + done)
+        finally:
+            os.close(fd)
+
+    def read(self, offset: int, n_px: int) -> np.ndarray:
+        out = np.empty((2, self.n_bins, n_px), np.float32)
+        view = memoryview(out).cast("B")
+        with open(self.path, "rb", buffering=0) as f:
+            f.seek(offset)
+            done = 0
+            while done < len(view):
+                got = f.readinto(view[done:])
+                if not got:
+                    raise KernelError(f"the kept spectra file {self.path} is shorter than expected")
+                done += got
+        return out
+
+
+def _keep_spectra(shape, band, cleanup, client) -> tuple[KeptSpectra | None, str]:
+    """A :class:`KeptSpectra` for a (T, Y, X) stack, or None and why the phase stage must re-read the stack."""
+    import shutil
+    import socket
+    import tempfile
+
+    _, y, x = shape
+    need = 2 * (band[1] - band[0]) * 4 * y * x
+    if client is not None:
+        # Tiles run on the cluster's workers: they must all share this machine's disk.
+        local = {"127.0.0.1", "localhost", "::1", socket.gethostname()}
+        try:
+            local.add(socket.gethostbyname(socket.gethostname()))
+        except OSError:
+            pass
+        hosts = {w.get("host") for w in client.scheduler_info().get("workers", {}).values()}
+        if not hosts or not hosts <= local:
+            return None, "the cluster's workers are not all on this machine"
+    base = dask.config.get("temporary-directory", None) or tempfile.gettempdir()
+    try:
+        free = shutil.disk_usage(base).free
+    except OSError as exc:
+        return None, f"no usable temporary directory ({exc})"
+    if free < need * 1.1 + 256 * 2**20:
+        return None, (f"{need / 2**30:.2f} GiB of kept spectra would not fit in {base} "
+                      f"({free / 2**30:.2f} GiB free)")
+    folder = tempfile.mkdtemp(prefix="rhythmap-spectra-", dir=base)
+    cleanup.callback(shutil.rmtree, folder, ignore_errors=True)
+    path = os.path.join(folder, "kept.f32")
+    with open(path, "wb") as f:
+        f.truncate(need)
+    return KeptSpectra(path, tuple(int(v) for v in band), int(x)), ""
+
+
+def _kept_tasks(keep: KeptSpectra, tiles: TilePlan, fn, tile_kwargs, **kwargs) -> list:
+    """One delayed ``fn(y0, x0, ty, tx, keep=, keep_offset=, ...)`` per tile, reading the kept spectra only."""
+    import functools
+
+    from dask.delayed import Delayed
+
+    token = dask.base.tokenize(keep.path, fn.__name__, kwargs)
+    graph, keys = {}, []
+    y_offsets = np.concatenate([[0], np.cumsum(tiles.chunks[0])[:-1]])
+    x_offsets = np.concatenate([[0], np.cumsum(tiles.chunks[1])[:-1]])
+    for iy, y0 in enumerate(y_offsets):
+        for ix, x0 in enumerate(x_offsets):
+            y0, x0, ty, tx = int(y0), int(x0), tiles.chunks[0][iy], tiles.chunks[1][ix]
+            key = f"{TILE_TASK_PREFIX}-{fn.__name__}-{token}-{iy}-{ix}"
+            graph[key] = (functools.partial(fn, keep=keep, keep_offset=keep.offset(y0, x0, ty), **kwargs,
+                                            **tile_kwargs(y0, x0, ty, tx)), y0, x0, ty, tx)
+            keys.append(key)
+    return [Delayed(key, graph) for key in keys]
+
+
 # ------------------------------------------------------------------ kernels
 class KernelError(RuntimeError):
     """An unexpected failure inside one of rhythmap's own tile kernels (a bug, not bad input)."""
@@ -317,7 +422,7 @@ def _kernel(fn):
 
 
 @_kernel
-def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
+def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, keep_offset=0):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
     ``block`` is the tile's 3 x 3 pieces from :func:`_tile_arrays` or one
@@ -333,6 +438,11 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     ``PASS1_KEYS``, and, unless ``gram_bin`` is None, ``bins`` (global bin
     ids), ``bin_sums`` (T, n_bins) float32 and ``bin_counts`` for the Gram
     matrix.
+
+    With ``keep`` (a :class:`KeptSpectra`), the band of each pixel's
+    detrended spectrum that the lock-in needs is also written to the kept
+    spectra's file at ``keep_offset`` (so the phase stage need not read the
+    stack again).
     """
     tile = PaddedTile(block, halo)
     if np.issubdtype(tile.dtype, np.floating) and not all(np.isfinite(a).all() for a in tile.arrays()):
@@ -345,15 +455,18 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin):
     ty, tx = hy - 2 * halo, hx - 2 * halo
     maps = np.empty((len(PASS1_KEYS), ty, tx), np.float32)
     bins = None if gram_bin is None else _TileBins(t, ty, tx, y0, x0, gram_bin)
-    kernel = spectral.SpectralKernel(plan, basis)
+    kernel = spectral.SpectralKernel(plan, basis, keep_band=None if keep is None else keep.band)
+    kept = None if keep is None else np.empty((2, keep.n_bins, ty * tx), np.float32)
     band_rows = max(1, spectral.FFT_BLOCK_COLUMNS // tx)
     for r0 in range(0, ty, band_rows):
         r1 = min(ty, r0 + band_rows)
         traces = tile.pooled_rows(r0, r1)
-        out = kernel.maps(traces)
+        out = kernel.maps(traces, None if kept is None else kept[:, :, r0 * tx:r1 * tx])
         maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
         if bins is not None:
             bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)
+    if kept is not None:
+        keep.write(keep_offset, kept)
     result = {"y0": y0, "x0": x0, "maps": maps}
     if bins is not None:
         result.update(bins.finish())
@@ -452,6 +565,30 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
         n_rows = lockin_bases[ref_label].shape[0]
         pooled_by_ref[ref_label] = preprocess.box_pool(proj[start:start + n_rows], halo).reshape(n_rows, ty * tx)
         start += n_rows
+    return _lockin_tile(y0, x0, ty, tx, lab, present, pooled_by_ref, lockin_bases, dominant)
+
+
+@_kernel
+def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_bases, band_weights, dominant):
+    """The phase stage on one tile from the spectra the maps pass kept: no read of the stack.
+
+    Each lock-in sum is one matrix product of the tile's kept bins with the
+    reference's band weights (:func:`rhythmap.phase.band_lockin_weights`);
+    the kept spectra are of the pooled, detrended traces, so nothing else is
+    needed. Same results as :func:`phase_tile_kernel` up to the band leak
+    checked by the engine.
+    """
+    spectra = keep.read(keep_offset, ty * tx).reshape(2 * keep.n_bins, ty * tx)
+    lab = labels.ravel()
+    present = np.unique(lab).tolist()
+    refs = sorted({label if label in lockin_bases else dominant for label in present})
+    projected = {r: band_weights[r] @ spectra for r in refs}
+    return _lockin_tile(y0, x0, ty, tx, lab, present, projected, lockin_bases, dominant)
+
+
+def _lockin_tile(y0, x0, ty, tx, lab, present, projected, lockin_bases, dominant):
+    """Phase and coherence of a tile's pixels from their lock-in sums against each reference needed."""
+    pooled_by_ref = projected
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
     for label in present:
@@ -517,6 +654,11 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
 
     Parameters and raised errors are those of :func:`analyze`.
     """
+    with contextlib.ExitStack() as cleanup:  # temporary files go however the run ends
+        return (yield from _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options))
+
+
+def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
     if not isinstance(stack, Stack):
         stack = open_stack(stack)
     opts = validate_options(options)
@@ -551,8 +693,16 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
     yield Progress(0, total, "maps")
     # a maps-only run needs no Gram bins
     tile_bin = None if opts["maps_only"] else gram_bin
-    tasks = _pass_tasks(stack.data, tiles_plan, maps_tile_kernel, halo=halo, plan=plan, basis=basis,
-                        gram_bin=tile_bin)
+    keep, phase_source = None, ""
+    if not opts["maps_only"]:
+        if opts["phase_from_kept_spectra"]:
+            band = phase_mod.kept_band_bins((lo_hi[0] / 60.0, lo_hi[1] / 60.0), plan.bin_hz, plan.n_bins)
+            keep, phase_source = _keep_spectra(stack.data.shape, band, cleanup, _active_client())
+        else:
+            phase_source = "phase_from_kept_spectra is off"
+    tasks = _pass_tasks(stack.data, tiles_plan, maps_tile_kernel,
+                        None if keep is None else (lambda y0, x0, ty, tx: {"keep_offset": keep.offset(y0, x0, ty)}),
+                        halo=halo, plan=plan, basis=basis, gram_bin=tile_bin, keep=keep)
     results = yield from _drain(tasks, "maps", cancel, stack.source)
     timings["maps_pass_s"] = time.perf_counter() - t_start
 
@@ -629,9 +779,25 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
                  for label, th in thetas.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
         yield Progress(0, total, "phase")
-        tasks2 = _pass_tasks(stack.data, tiles_plan, phase_tile_kernel,
-                             lambda y0, x0, ty, tx: {"labels": labels[y0:y0 + ty, x0:x0 + tx]},
-                             halo=halo, lockin_bases=bases, dominant=dominant)
+
+        def tile_labels(y0, x0, ty, tx):
+            return {"labels": labels[y0:y0 + ty, x0:x0 + tx]}
+
+        if keep is not None:
+            weights = {label: phase_mod.band_lockin_weights(b, keep.band) for label, b in bases.items()}
+            leak = max(w[1] for w in weights.values())
+            if leak > phase_mod.MAX_BAND_LEAK:
+                phase_source = (f"the references' lock-in rows leave the kept band of the spectrum "
+                                f"({leak:.1e} of their energy outside it)")
+                keep = None
+        if keep is not None:
+            phase_source = f"kept spectra (largest band leak {leak:.1e})"
+            tasks2 = _kept_tasks(keep, tiles_plan, kept_phase_tile_kernel, tile_labels, lockin_bases=bases,
+                                 band_weights={label: w[0] for label, w in weights.items()}, dominant=dominant)
+        else:
+            phase_source = f"second read ({phase_source})"
+            tasks2 = _pass_tasks(stack.data, tiles_plan, phase_tile_kernel, tile_labels,
+                                 halo=halo, lockin_bases=bases, dominant=dominant)
         results2 = yield from _drain(tasks2, "phase", cancel, stack.source)
         for r in results2:
             ty, tx = r["phase"].shape
@@ -684,6 +850,7 @@ def iter_analyze(stack, rate_range_bpm, *, cancel: Callable[[], bool] | None = N
         frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
         parameters={"rate_range_bpm": list(lo_hi), **opts, "warnings": warn,
                     "gram_bin_px": gram_bin, "tile_shape_px": list(tiles_plan.tile_shape),
+                    "phase_source": phase_source,
                     "velocity_unit": "um/s" if stack.pixel_size_um else "px/s"},
         input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
         timings={**timings, "total_s": time.perf_counter() - t_start},

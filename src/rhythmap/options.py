@@ -63,7 +63,7 @@ OPTIONS: tuple[Option, ...] = (
            "Cap on the number of (binned) pixels that enter the frame Gram matrix of the rhythm "
            "reference; the bin size grows until the beating pixels fit under it.",
            lambda v: 100 <= v <= 10**7, "an integer >= 100"),
-    Option("n_landmarks", 300, int,
+    Option("n_landmarks", 200, int,
            "Number of landmark windows used for persistent homology and circular coordinates.",
            lambda v: 20 <= v <= 2000, "an integer from 20 to 2000"),
     Option("max_frames_topology", 1500, int,
@@ -92,6 +92,12 @@ OPTIONS: tuple[Option, ...] = (
            "script using them needs the usual `if __name__ == \"__main__\":` guard. On a dask.distributed "
            "cluster these steps go to its workers instead.",
            lambda v: 0 <= v <= 256, "an integer from 0 to 256"),
+    Option("phase_from_kept_spectra", True, bool,
+           "Keep the band of every pixel's spectrum that the lock-in needs (in a temporary file) during the "
+           "maps pass, and compute the phase maps from it instead of reading the stack a second time. The "
+           "stack is read again anyway when a reference's spectrum leaves that band, when the temporary "
+           "directory lacks the space, or when the cluster's workers do not share this machine's disk.",
+           None, "true or false"),
     Option("tile_loop_map", False, bool,
            "Also compute a tile-level loop-score map (16x16 pixel tiles), in worker processes (at least one).",
            None, "true or false"),

@@ -154,41 +154,129 @@ def smooth_over_period(theta_unwrapped, period_frames: float) -> np.ndarray:
     return sm[w:w + u.size]
 
 
+#: Each coherence segment is a Hann window (in the reference's phase) this many
+#: cycles long at the least, overlapping its neighbours by half. Longer windows
+#: have narrower spectra (main lobe +-f/SEGMENT_HOP_CYCLES around the rate f), which
+#: is what lets the lock-in be read from a band of each pixel's spectrum.
+SEGMENT_HOP_CYCLES = 2
+
+
 def lockin_basis(theta_frames, max_segments: int = 32) -> np.ndarray:
     """Real (2 + 2K, T) matrix whose product with (T, n) traces gives the lock-in sums.
 
     Rows 0-1: cos and sin of theta weighted by a Hann taper over the whole
-    record (the phase estimate). Rows 2k+2, 2k+3: cos and sin of theta on the
-    k-th of K segments (the coherence estimate). Segments are made of whole
-    cycles of theta, so the double-frequency term of cos(theta - phi) e^{-i theta}
-    cancels within each; the taper does the same for the whole record. Without
-    that, the leak would bend the lag by up to 1/(2 pi cycles) and compress
-    delay maps by a few per cent.
+    record (the phase estimate). Rows 2k+2, 2k+3: cos and sin of theta under
+    the k-th of K overlapping segment windows (the coherence estimate).
+
+    A segment window is a Hann window of the reference's phase: it spans
+    2g whole cycles of theta (g >= ``SEGMENT_HOP_CYCLES``) and starts g
+    cycles after the one before, so the windows follow a drifting rate and
+    add up to one between the first and last hop. Because each window (and
+    the whole-record taper) is smooth and spans whole cycles, the
+    double-frequency term of cos(theta - phi) e^{-i theta} cancels in each
+    sum (without that, the leak would bend the lag by up to 1/(2 pi cycles)),
+    and each row's spectrum stays within about +-f/g of the rate f, so the
+    sums can also be read from a band of the traces' spectra
+    (:func:`band_lockin_weights`).
 
     Parameters
     ----------
     theta_frames : (T,) array_like
         Unwrapped reference phase at every frame, increasing.
     max_segments : int
-        At most this many segments (cycles are grouped when there are more).
+        At most about this many segments (g grows for long records).
     """
     th = np.asarray(theta_frames, float)
     t = th.size
     taper = 0.5 - 0.5 * np.cos(2 * np.pi * (np.arange(t) + 0.5) / t)
-    turns = np.floor((th - th[0]) / TWO_PI)
-    n_cycles = int(turns[-1])
-    group = max(1, int(np.ceil(n_cycles / max_segments)))
-    seg = turns // group
-    last = n_cycles // group  # a trailing partial group is left out
-    n_seg = max(1, int(last))
+    cycles = (th - th[0]) / TWO_PI
+    n_cycles = float(cycles[-1])
+    hop = max(SEGMENT_HOP_CYCLES, int(np.ceil(n_cycles / (max_segments + 1))))
+    n_seg = int(np.floor(n_cycles / hop)) - 1
+    if n_seg < 2:  # too few cycles for two segments: halves of the record
+        hop = n_cycles / 3.0
+        n_seg = 2
     basis = np.zeros((2 + 2 * n_seg, t), np.float32)
     basis[0] = taper * np.cos(th)
     basis[1] = taper * np.sin(th)
     for k in range(n_seg):
-        sel = seg == k
-        basis[2 + 2 * k, sel] = np.cos(th[sel])
-        basis[3 + 2 * k, sel] = np.sin(th[sel])
+        v = (cycles - k * hop) / (2 * hop)
+        w = np.where((v > 0) & (v < 1), np.sin(np.pi * np.clip(v, 0, 1)) ** 2, 0.0)
+        basis[2 + 2 * k] = w * np.cos(th)
+        basis[3 + 2 * k] = w * np.sin(th)
     return basis
+
+
+def kept_band_bins(rate_range_hz, bin_hz: float, n_bins: int) -> tuple[int, int]:
+    """The rFFT bins [a, b) of each pixel's spectrum the maps pass keeps for the lock-in.
+
+    A reference's rate lies in the rate band [f_lo, f_hi]; the lock-in rows
+    of :func:`lockin_basis` spread their spectra over about +-f/g around it
+    (g = ``SEGMENT_HOP_CYCLES``), with sidelobes that fall off fast. The kept
+    band is [f_lo (1 - 1/g), f_hi (1 + 1/g)] widened by ``KEPT_MARGIN_BINS``
+    on each side. Whether a particular reference's rows really lie inside is
+    checked when they are known (:func:`band_lockin_weights`).
+
+    Examples
+    --------
+    >>> kept_band_bins((0.5, 3.0), 1 / 12, 301)
+    (0, 60)
+    """
+    lo, hi = rate_range_hz
+    g = SEGMENT_HOP_CYCLES
+    a = int(np.floor(lo * (1 - 1 / g) / bin_hz)) - KEPT_MARGIN_BINS
+    b = int(np.ceil(hi * (1 + 1 / g) / bin_hz)) + KEPT_MARGIN_BINS + 1
+    return max(0, a), min(n_bins, b)
+
+
+#: Bins kept beyond the band the lock-in rows' main lobes can reach.
+KEPT_MARGIN_BINS = 5
+
+#: Largest fraction of a lock-in row's energy allowed outside the kept band
+#: (its amplitude share is the square root: 1 %). Beyond it the engine reads
+#: the stack a second time instead.
+MAX_BAND_LEAK = 1e-4
+
+
+def band_lockin_weights(basis, band: tuple[int, int]) -> tuple[np.ndarray, float]:
+    """Weights that give ``basis @ x`` from bins ``band`` of rfft(x): ((R, 2 (b - a)) float32, leak).
+
+    By Parseval, for real b and x of length T,
+    sum_t b(t) x(t) = (1/T) sum_k c_k Re(B_k conj(X_k)) over the rFFT bins,
+    with c_k = 1 at 0 and at Nyquist and 2 elsewhere. Keeping only bins
+    a..b-1 gives the product for any x when every row's spectrum lies in
+    those bins; ``leak`` is the largest fraction of a row's energy outside
+    them, and the error of each sum is at most sqrt(leak) times the norms of
+    the row and of the trace's out-of-band part (Cauchy-Schwarz).
+
+    The returned matrix multiplies the stacked real and imaginary parts
+    [Re X[a:b]; Im X[a:b]] (2 (b - a), n).
+
+    Examples
+    --------
+    >>> th = 2 * np.pi * 1.2 * np.arange(600) * 0.02
+    >>> b = lockin_basis(th)
+    >>> w, leak = band_lockin_weights(b, kept_band_bins((0.5, 3.0), 1 / 12, 301))
+    >>> x = np.cos(th - 0.7) + 0.3 * np.cos(3 * th)
+    >>> spec = np.fft.rfft(x)[:58]
+    >>> bool(np.allclose(w @ np.concatenate([spec.real, spec.imag]), b @ x, atol=1e-3)), leak < 1e-4
+    (True, True)
+    """
+    b = np.asarray(basis, float)
+    t = b.shape[1]
+    spec = np.fft.rfft(b, axis=1)
+    c = np.full(spec.shape[1], 2.0)
+    c[0] = 1.0
+    if t % 2 == 0:
+        c[-1] = 1.0
+    energy = (c * np.abs(spec) ** 2).sum(axis=1)
+    a, z = band
+    inside = (c[a:z] * np.abs(spec[:, a:z]) ** 2).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        leak = float(np.max(np.where(energy > 0, 1.0 - inside / energy, 0.0)))
+    part = spec[:, a:z] * (c[a:z] / t)
+    weights = np.concatenate([part.real, part.imag], axis=1).astype(np.float32)
+    return weights, max(0.0, leak)
 
 
 def lockin(traces, basis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

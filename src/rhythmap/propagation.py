@@ -68,6 +68,8 @@ def unwrap_delay(delay_s, mask, period_s: float, start=None) -> np.ndarray:
     phase = np.where(sub_m, 2 * np.pi * np.mod(d[y0:y1, x0:x1], period_s) / period_s, 0.0)
     if sub_m.sum() == 1 or min(sub_m.shape) < 2:
         unwrapped = np.unwrap(phase.ravel()).reshape(phase.shape)
+    elif sub_m.sum() > COARSE_UNWRAP_MIN_PX:
+        unwrapped = _unwrap_coarse_to_fine(phase, sub_m, unwrap_phase)
     else:
         unwrapped = np.asarray(unwrap_phase(np.ma.array(phase, mask=~sub_m)).filled(np.nan))
     sub = unwrapped * period_s / (2 * np.pi)
@@ -75,6 +77,42 @@ def unwrap_delay(delay_s, mask, period_s: float, start=None) -> np.ndarray:
     sub += d[start] - anchor  # keep the start pixel's own delay (removes the whole-period offset)
     out[y0:y1, x0:x1] = np.where(sub_m, sub, np.nan)
     return out
+
+
+#: Regions with more pixels than this are unwrapped on a grid of COARSE_UNWRAP_BLOCK^2 blocks first.
+COARSE_UNWRAP_MIN_PX = 2**16
+COARSE_UNWRAP_BLOCK = 4
+
+
+def _unwrap_coarse_to_fine(phase, mask, unwrap_phase):
+    """Unwrap a large region's phase on blocks, then put every pixel within pi of its block.
+
+    The phase of each ``COARSE_UNWRAP_BLOCK``-square block is the circular mean
+    of its pixels (blocks at least half inside the mask); those are unwrapped
+    by the same reliability-sorted algorithm, and each pixel takes the
+    multiple of 2 pi that brings it closest to its block (or the nearest
+    block inside the mask). For a phase that changes by less than pi over a
+    block, this equals unwrapping every pixel, at a sixteenth of the cost;
+    averaging also makes the unwrapping path less sensitive to noisy pixels.
+    """
+    b = COARSE_UNWRAP_BLOCK
+    h, w = phase.shape
+    ph, pw = -(-h // b) * b, -(-w // b) * b
+    z = np.zeros((ph, pw), complex)
+    z[:h, :w] = np.where(mask, np.exp(1j * phase), 0)
+    n = np.zeros((ph, pw))
+    n[:h, :w] = mask
+    zs = z.reshape(ph // b, b, pw // b, b).sum(axis=(1, 3))
+    ns = n.reshape(ph // b, b, pw // b, b).sum(axis=(1, 3))
+    ok = (ns >= b * b / 2) & (np.abs(zs) > 0)
+    if ok.sum() < 4:
+        return np.asarray(unwrap_phase(np.ma.array(phase, mask=~mask)).filled(np.nan))
+    coarse = np.asarray(unwrap_phase(np.ma.array(np.angle(zs), mask=~ok)).filled(np.nan))
+    # blocks outside the coarse mask borrow the nearest coarse block's value
+    _, (iy, ix) = ndi.distance_transform_edt(~ok, return_indices=True)
+    coarse = coarse[iy, ix]
+    ref = np.repeat(np.repeat(coarse, b, axis=0), b, axis=1)[:h, :w]
+    return phase + 2 * np.pi * np.round((ref - phase) / (2 * np.pi))
 
 
 def local_gradient(field, mask, radius: int = 3, min_points: int = 6) -> tuple[np.ndarray, np.ndarray]:
@@ -212,9 +250,15 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
         t0, y0, x0, slow = p
         return t0 + slow * np.hypot(yy - y0, xx - x0) - t
 
+    def jac(p):
+        _, y0, x0, slow = p
+        r = np.hypot(yy - y0, xx - x0)
+        safe = np.where(r > 0, r, 1.0)
+        return np.column_stack([np.ones_like(r), -slow * (yy - y0) / safe, -slow * (xx - x0) / safe, r])
+
     p0 = [t[i0], yy[i0], xx[i0], max(g * scale, 1e-6)]
     try:
-        fit = least_squares(resid, p0, loss="soft_l1", f_scale=max(plane_rms, 1e-6))
+        fit = least_squares(resid, p0, jac=jac, loss="soft_l1", f_scale=max(plane_rms, 1e-6))
         t0, y0, x0, slow = fit.x
         point_rms = float(np.sqrt(np.mean(resid(fit.x) ** 2)))
     except (ValueError, np.linalg.LinAlgError):

@@ -291,7 +291,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
     )
 
 
-def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=300, coeff=47, rng=None,
+def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=200, coeff=47, rng=None,
                              smooth_s=None):
     """The topological route: sliding-window distances -> persistence -> phase -> beats.
 
@@ -307,7 +307,7 @@ def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=300, coeff=4
     tau : int
         Delay in frames.
     n_landmarks : int, optional
-        Landmarks for persistence and circular coordinates (default 300).
+        Landmarks for persistence and circular coordinates (default 200).
     coeff : int, optional
         Odd prime for the coefficients (default 47).
     rng : None, int or numpy.random.Generator, optional

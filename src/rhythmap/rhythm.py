@@ -36,7 +36,7 @@ def frame_gram(traces) -> np.ndarray:
     return x @ x.T
 
 
-def region_reference(traces, frame_interval_s: float, rate_bpm: float, *, n_landmarks: int = 300,
+def region_reference(traces, frame_interval_s: float, rate_bpm: float, *, n_landmarks: int = 200,
                      max_frames: int = 1500, coeff: int = 47) -> RhythmReference:
     """The rhythm reference of one region from its traces.
 

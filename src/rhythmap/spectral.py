@@ -234,8 +234,9 @@ class SpectralKernel:
     78.0
     """
 
-    def __init__(self, plan: SpectralPlan, trend_basis=None, n_bins_trend=None):
+    def __init__(self, plan: SpectralPlan, trend_basis=None, n_bins_trend=None, keep_band=None):
         self.plan = plan
+        self.keep_band = keep_band
         window = hann_window(plan.n_frames)
         self.window_sum = float(window.sum())
         k_cut = 0
@@ -247,6 +248,13 @@ class SpectralKernel:
         self.trend_basis_t = np.ascontiguousarray(q.T)
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
+        if keep_band is not None:  # the trend components' plain spectrum in the kept bins
+            self.keep_trend = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]].astype(np.complex64)
+
+    def _spectrum(self, traces):
+        """Plain rFFT along time of (T, n) traces and their trend coefficients."""
+        x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
+        return scipy.fft.rfft(x, axis=0), self.trend_basis_t @ x
 
     def power(self, traces):
         """Hann-windowed, detrended periodogram of (T, n) traces: ((F, n) float32, each trace's windowed sum).
@@ -255,19 +263,30 @@ class SpectralKernel:
         to the spectrum in one compiled loop (:func:`rhythmap._loops.windowed_power`),
         which equals windowing and detrending in time.
         """
-        x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
-        t, n = x.shape
-        spec = scipy.fft.rfft(x, axis=0)
-        coef = self.trend_basis_t @ x
+        return self._power(*self._spectrum(traces))
+
+    def _power(self, spec, coef):
         power = np.empty(spec.shape, np.float32)
-        dc = np.empty(n, np.float32)
-        _loops.windowed_power(spec, t, coef, self.trend_re, self.trend_im, power, dc)
+        dc = np.empty(spec.shape[1], np.float32)
+        _loops.windowed_power(spec, self.plan.n_frames, coef, self.trend_re, self.trend_im, power, dc)
         return power, dc
 
-    def maps(self, traces) -> np.ndarray:
-        """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order."""
+    def maps(self, traces, kept=None) -> np.ndarray:
+        """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
+
+        With ``kept`` ((2, b - a, n) float32) and the kernel's ``keep_band``
+        (a, b), also writes the real and imaginary parts of the detrended
+        traces' plain spectrum in bins a..b-1 (for the lock-in, see
+        :func:`rhythmap.phase.band_lockin_weights`).
+        """
         plan = self.plan
-        power, dc = self.power(traces)
+        spec, coef = self._spectrum(traces)
+        if kept is not None:
+            a, b = self.keep_band
+            band = spec[a:b] - self.keep_trend @ coef.astype(np.complex64)
+            kept[0] = band.real
+            kept[1] = band.imag
+        power, dc = self._power(spec, coef)
         n_bins, n = power.shape
         first = plan.trend_bins + 1
         # White-noise level: the median ordinate above the trend bins is ln 2

@@ -220,7 +220,7 @@ class H1Persistence:
     landmark_dist: np.ndarray = field(default=None, repr=False)
 
 
-def h1_persistence(dist, *, n_landmarks=300, coeff=47, cocycles=False, start=0):
+def h1_persistence(dist, *, n_landmarks=200, coeff=47, cocycles=False, start=0):
     """H1 Vietoris-Rips persistence of greedy landmarks, computed by ripser.
 
     Parameters
@@ -228,7 +228,7 @@ def h1_persistence(dist, *, n_landmarks=300, coeff=47, cocycles=False, start=0):
     dist : (N, N) array_like
         Symmetric distance matrix (distances, not squared distances).
     n_landmarks : int, optional
-        Number of farthest-point landmarks (default 300; all distinct points if
+        Number of farthest-point landmarks (default 200; all distinct points if
         ``N`` is smaller). Measured on these 2-core machines for a noisy loop of
         2376 windows: about 0.2 s at 200, 0.6 s at 300, 1.4 s at 400 landmarks.
     coeff : int, optional
@@ -505,7 +505,7 @@ def _harmonic_lift(z, edge_mask, density_correction):
     return f, int(n_comp)
 
 
-def circular_coordinates(dist, *, n_landmarks=300, coeff=47, rng=None, scale_fraction=0.5,
+def circular_coordinates(dist, *, n_landmarks=200, coeff=47, rng=None, scale_fraction=0.5,
                          density_correction=True, persistence=None):
     """Circular coordinate ``theta`` in ``[0, 2 pi)`` of every point, from the main H1 class.
 
@@ -515,7 +515,7 @@ def circular_coordinates(dist, *, n_landmarks=300, coeff=47, rng=None, scale_fra
         Symmetric distance matrix (distances, not squared) satisfying the
         triangle inequality, e.g. between sliding windows.
     n_landmarks : int, optional
-        Landmarks for the persistence computation (default 300).
+        Landmarks for the persistence computation (default 200).
     coeff : int, optional
         Odd prime ``p`` (default 47); 2 is refused.
     rng : None, int or numpy.random.Generator, optional

@@ -1,0 +1,121 @@
+"""The phase stage from spectra kept by the maps pass: equal to a second read of the stack, with its fallbacks.
+
+The lock-in sums are inner products of each pooled, detrended trace with a
+few smooth rows; by Parseval they can be taken over a band of the trace's
+spectrum. These tests hold the kept-spectra route to the time-domain route
+(the definition), check that it cleans up after itself, and that it steps
+aside (reading the stack again) when it cannot be exact.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+from pathlib import Path
+
+import dask
+import numpy as np
+import pytest
+import scipy.fft
+
+import rhythmap
+from rhythmap import engine, phase as phase_mod, preprocess, spectral, synthetic
+
+
+@pytest.fixture(scope="module")
+def wave():
+    s = synthetic.plane_wave_scene((300, 40, 44), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
+                                   speed_um_s=6000.0, direction_deg=30.0, noise_sd=20.0, rng=5)
+    return rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0)
+
+
+@pytest.fixture(scope="module")
+def second_read(wave):
+    return rhythmap.analyze(wave, (40, 200), phase_from_kept_spectra=False)
+
+
+def _circ_diff(a, b):
+    return np.abs(np.angle(np.exp(1j * (a - b))))
+
+
+def test_kept_spectra_give_the_phase_of_a_second_read(wave, second_read):
+    kept = rhythmap.analyze(wave, (40, 200))
+    assert kept.parameters["phase_source"].startswith("kept spectra")
+    assert second_read.parameters["phase_source"].startswith("second read")
+    ok = np.isfinite(second_read.phase_rad)
+    assert ok.mean() > 0.9
+    np.testing.assert_array_equal(np.isfinite(kept.phase_rad), ok)
+    assert np.max(_circ_diff(kept.phase_rad[ok], second_read.phase_rad[ok])) < 1e-3
+    np.testing.assert_allclose(kept.coherence, second_read.coherence, atol=5e-3)
+    period = kept.references[1].mean_period_s
+    assert np.nanmax(_circ_diff(2 * np.pi * kept.delay_s / period, 2 * np.pi * second_read.delay_s / period)) < 2e-3
+
+
+def test_band_weights_equal_the_time_domain_sums(rng):
+    """Parseval on the rFFT bins (the definition: basis @ detrended traces)."""
+    t, dt = 600, 0.02
+    time_s = np.arange(t) * dt
+    theta = 2 * np.pi * 1.1 * (time_s + 0.15 * time_s ** 2 / time_s[-1])  # a rate drifting up by 30 %
+    basis = phase_mod.lockin_basis(theta)
+    plan = spectral.plan_spectrum(t, dt, (30, 180))
+    band = phase_mod.kept_band_bins((0.5, 3.0), plan.bin_hz, plan.n_bins)
+    weights, leak = phase_mod.band_lockin_weights(basis, band)
+    assert leak < phase_mod.MAX_BAND_LEAK
+    x = (np.cos(theta[:, None] - rng.uniform(0, 6, 50)) + rng.normal(0, 1, (t, 50))).astype(np.float32)
+    spec = scipy.fft.rfft(x.astype(np.float64), axis=0)[band[0]:band[1]]
+    got = weights @ np.concatenate([spec.real, spec.imag]).astype(np.float32)
+    want = basis.astype(np.float64) @ x
+    np.testing.assert_allclose(got, want, atol=2e-3 * np.abs(want).max())
+    # a band that cuts through the rows' spectra is reported, not used
+    _, cut = phase_mod.band_lockin_weights(basis, (band[0], int(1.2 / plan.bin_hz)))
+    assert cut > 100 * phase_mod.MAX_BAND_LEAK
+
+
+def test_the_maps_kernel_keeps_the_detrended_spectrum(rng):
+    t, dt = 400, 0.03
+    plan = spectral.plan_spectrum(t, dt, (40, 200))
+    trend = preprocess.trend_basis(t, dt, 0.5 * 40 / 60)
+    band = phase_mod.kept_band_bins((40 / 60, 200 / 60), plan.bin_hz, plan.n_bins)
+    x = (500 + 30 * np.exp(-np.arange(t) / 150)[:, None] + rng.normal(0, 5, (t, 64))).astype(np.float32)
+    kept = np.empty((2, band[1] - band[0], 64), np.float32)
+    spectral.SpectralKernel(plan, trend, keep_band=band).maps(x, kept)
+    want = np.fft.rfft(preprocess.detrend(x, trend).astype(np.float64), axis=0)[band[0]:band[1]]
+    # float32 sums of ~500 x 400 leave ~1e-2 of rounding in the lowest bins: small against the noise bins
+    scale = np.sqrt(np.mean(np.abs(want) ** 2))
+    np.testing.assert_allclose(kept[0], want.real, atol=1e-3 * scale)
+    np.testing.assert_allclose(kept[1], want.imag, atol=1e-3 * scale)
+
+
+def test_a_leaking_reference_reads_the_stack_again(wave, second_read, monkeypatch):
+    monkeypatch.setattr(phase_mod, "MAX_BAND_LEAK", -1.0)
+    res = rhythmap.analyze(wave, (40, 200))
+    assert res.parameters["phase_source"].startswith("second read")
+    assert "leave the kept band" in res.parameters["phase_source"]
+    np.testing.assert_array_equal(res.phase_rad, second_read.phase_rad)
+    np.testing.assert_array_equal(res.coherence, second_read.coherence)
+
+
+def test_no_room_for_the_kept_spectra_reads_the_stack_again(wave, second_read, monkeypatch):
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: shutil._ntuple_diskusage(1, 1, 0))
+    res = rhythmap.analyze(wave, (40, 200))
+    assert "would not fit" in res.parameters["phase_source"]
+    np.testing.assert_array_equal(res.phase_rad, second_read.phase_rad)
+
+
+def test_kept_spectra_are_removed_after_a_run_and_after_a_stop(wave, tmp_path):
+    with dask.config.set({"temporary-directory": str(tmp_path)}):
+        seen = []
+        gen = engine.iter_analyze(wave, (40, 200))
+        for tick in gen:
+            if tick.stage == "references":
+                seen = [p for p in tmp_path.iterdir() if p.name.startswith("rhythmap-spectra-")]
+                sizes = [f.stat().st_size for p in seen for f in Path(p).iterdir()]
+        assert len(seen) == 1 and sizes and sizes[0] > 0  # the pass really wrote them there
+        assert list(tmp_path.iterdir()) == []
+        gen = engine.iter_analyze(wave, (40, 200))
+        for tick in gen:
+            if tick.stage == "phase":
+                gen.close()  # a front end stopping the run
+                break
+        assert list(tmp_path.iterdir()) == []
+    assert os.path.isdir(tmp_path)
