@@ -70,6 +70,9 @@ def step(name: str, store: str) -> dict:
     if name in ("maps", "full", "maps/4", "maps/2", "topology"):
         # Imports (and loading the compiled loops, which is part of importing
         # them) are not timed, as the read step's imports are not.
+        import ripser  # noqa: F401 - persistence (imported by the engine when the references start)
+        import skimage.restoration  # noqa: F401 - unwrapping in the propagation step
+
         import rhythmap
         import rhythmap.rhythm
         from rhythmap import _loops
@@ -85,7 +88,8 @@ def step(name: str, store: str) -> dict:
             h = st.shape[1] // 2
             w = h if name == "maps/4" else st.shape[2]
             st = rhythmap.open_stack(st.data[:, :h, :w], frame_interval_s=st.frame_interval_s)
-        rhythmap.analyze(st, (30, 180), maps_only=(name != "full"))
+        res = rhythmap.analyze(st, (30, 180), maps_only=(name != "full"))
+        stages = {k: round(v, 2) for k, v in res.timings.items()}
     elif name == "topology":
         # Everything after the Gram pass for T = 1000 frames: G = X X^T of the capped
         # bin traces (20 000, the default cap), sliding-window distances, persistence
@@ -112,9 +116,12 @@ def step(name: str, store: str) -> dict:
             rate[y0:y0 + 128] = freqs[band][np.argmax(power[band], axis=0)] * 60
     else:
         raise SystemExit(f"unknown step {name}")
+    seconds = time.perf_counter() - t0
     dask.config.refresh()
-    return {"step": name, "seconds": time.perf_counter() - t0,
-            "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+    out = {"step": name, "seconds": seconds, "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+    if name == "full":
+        out["stages"] = stages
+    return out
 
 
 def main(argv=None) -> int:
@@ -149,7 +156,8 @@ def main(argv=None) -> int:
                 print(out.stderr, file=sys.stderr)
                 return 1
             row = json.loads(out.stdout.strip().splitlines()[-1])
-            print(f"  {name:8s} {row['seconds']:7.2f} s  peak {row['peak_mb']:7.0f} MB", flush=True)
+            print(f"  {name:8s} {row['seconds']:7.2f} s  peak {row['peak_mb']:7.0f} MB"
+                  + (f"  stages {row['stages']}" if "stages" in row else ""), flush=True)
             seen = best.setdefault(name, row)
             # the best time, and the highest peak memory of any round
             best[name] = {"step": name, "seconds": min(seen["seconds"], row["seconds"]),

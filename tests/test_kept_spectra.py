@@ -119,3 +119,23 @@ def test_kept_spectra_are_removed_after_a_run_and_after_a_stop(wave, tmp_path):
                 break
         assert list(tmp_path.iterdir()) == []
     assert os.path.isdir(tmp_path)
+
+
+def test_workers_on_other_machines_read_the_stack_again(tmp_path):
+    """Kept spectra live on this machine's disk: a cluster with workers elsewhere cannot share them."""
+    import contextlib
+
+    class Remote:
+        def __init__(self, hosts):
+            self.hosts = hosts
+
+        def scheduler_info(self):
+            return {"workers": {f"tcp://{h}:1": {"host": h} for h in self.hosts}}
+
+    with dask.config.set({"temporary-directory": str(tmp_path)}), contextlib.ExitStack() as cleanup:
+        keep, why = engine._keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["10.1.2.3", "127.0.0.1"]))
+        assert keep is None and "not all on this machine" in why
+        keep, why = engine._keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["127.0.0.1"]))
+        assert keep is not None and why == ""
+        assert os.path.getsize(keep.path) == 2 * 8 * 4 * 100
+    assert list(tmp_path.iterdir()) == []
