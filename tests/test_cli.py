@@ -49,6 +49,18 @@ def test_options_from_the_shared_table(tmp_path, sample_tif):
 
     params = rhythmap.load_result(out).parameters
     assert params["pooling_radius_px"] == 0 and params["false_alarm"] == 0.01
+    assert params["phase_source"].startswith("kept spectra")
+
+
+def test_an_option_on_by_default_has_a_flag_to_turn_it_off(tmp_path, sample_tif):
+    out = tmp_path / "o3"
+    p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150", "--no-phase-from-kept-spectra", "--quiet")
+    assert p.returncode == 0, p.stderr
+    import rhythmap
+
+    params = rhythmap.load_result(out).parameters
+    assert params["phase_from_kept_spectra"] is False
+    assert params["phase_source"] == "second read (phase_from_kept_spectra is off)"
 
 
 @pytest.mark.parametrize("args, match", [

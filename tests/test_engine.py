@@ -209,3 +209,10 @@ def test_pooling_from_pieces_equals_pooling_the_padded_tile(rng, dtype):
     assert split.shape == whole.shape
     for r0, r1 in [(0, 4), (2, 6), (3, 7), (4, 9), (0, 9)]:  # reaching the top strip, inside, the bottom
         np.testing.assert_array_equal(split.pooled_rows(r0, r1), whole.pooled_rows(r0, r1))
+
+
+def test_a_short_last_tile_joins_the_one_before():
+    assert engine._split(10, 8, 3) == (10,)
+    assert engine._split(100, 33, 2) == (33, 33, 34)
+    assert engine._split(100, 33, 1) == (33, 33, 33, 1)
+    assert engine._split(96, 32, 5) == (32, 32, 32)

@@ -44,9 +44,9 @@ def add_analysis_arguments(p: argparse.ArgumentParser) -> None:
     for opt in OPTIONS:
         if not opt.cli:
             continue
-        if opt.kind is bool:
-            group.add_argument(_flag(opt.name), dest=opt.name, action="store_true", default=None,
-                               help=opt.help)
+        if opt.kind is bool:  # --name and --no-name; unset leaves the default (or a batch config's value)
+            group.add_argument(_flag(opt.name), dest=opt.name, action=argparse.BooleanOptionalAction,
+                               default=None, help=f"{opt.help} (default {'on' if opt.default else 'off'})")
         else:
             group.add_argument(_flag(opt.name), dest=opt.name, type=str, default=None,
                                metavar=opt.kind.__name__.upper(), help=f"{opt.help} (default {opt.default})")

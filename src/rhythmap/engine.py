@@ -24,6 +24,7 @@ import sys
 import threading
 import time
 import warnings
+import weakref
 from dataclasses import dataclass
 from typing import Any, Callable, Iterator
 
@@ -149,7 +150,8 @@ def _split(n, size, min_last=1):
     full, rest = divmod(n, size)
     parts = [size] * full + ([rest] if rest else [])
     if len(parts) > 1 and parts[-1] < min_last:
-        parts[-2] += parts.pop()
+        last = parts.pop()  # (not `parts[-2] += parts.pop()`: the index is taken before the pop)
+        parts[-1] += last
     return tuple(parts)
 
 
@@ -353,14 +355,18 @@ def _keep_spectra(shape, band, cleanup, client) -> tuple[KeptSpectra | None, str
 
     _, y, x = shape
     need = 2 * (band[1] - band[0]) * 4 * y * x
+    if not hasattr(os, "pwrite"):
+        return None, "this system has no positioned file writes"
     if client is not None:
         # Tiles run on the cluster's workers: they must all share this machine's disk.
+        from distributed.comm import get_address_host
+
         local = {"127.0.0.1", "localhost", "::1", socket.gethostname()}
         try:
             local.add(socket.gethostbyname(socket.gethostname()))
         except OSError:
             pass
-        hosts = {w.get("host") for w in client.scheduler_info().get("workers", {}).values()}
+        hosts = {get_address_host(addr) for addr in client.nthreads()}  # every worker, however many
         if not hosts or not hosts <= local:
             return None, "the cluster's workers are not all on this machine"
     base = dask.config.get("temporary-directory", None) or tempfile.gettempdir()
@@ -373,9 +379,18 @@ def _keep_spectra(shape, band, cleanup, client) -> tuple[KeptSpectra | None, str
                       f"({free / 2**30:.2f} GiB free)")
     folder = tempfile.mkdtemp(prefix="rhythmap-spectra-", dir=base)
     cleanup.callback(shutil.rmtree, folder, ignore_errors=True)
+    # also at exit if the run is abandoned without being closed
+    weakref.finalize(cleanup, shutil.rmtree, folder, ignore_errors=True)
     path = os.path.join(folder, "kept.f32")
-    with open(path, "wb") as f:
-        f.truncate(need)
+    try:
+        with open(path, "wb") as f:
+            if hasattr(os, "posix_fallocate"):  # reserve the space now: no disk-full error mid-pass
+                os.posix_fallocate(f.fileno(), 0, need)
+            else:
+                f.truncate(need)
+    except OSError as exc:
+        shutil.rmtree(folder, ignore_errors=True)
+        return None, f"the kept spectra file could not be made in {base} ({exc})"
     return KeptSpectra(path, tuple(int(v) for v in band), int(x)), ""
 
 
@@ -693,7 +708,7 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
     yield Progress(0, total, "maps")
     # a maps-only run needs no Gram bins
     tile_bin = None if opts["maps_only"] else gram_bin
-    keep, phase_source = None, ""
+    keep, phase_source = None, "no phase stage (maps only)"
     if not opts["maps_only"]:
         if opts["phase_from_kept_spectra"]:
             band = phase_mod.kept_band_bins((lo_hi[0] / 60.0, lo_hi[1] / 60.0), plan.bin_hz, plan.n_bins)
@@ -768,6 +783,8 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
             yield Progress(1, 1, "loop map")
         timings["references_s"] = time.perf_counter() - t_ref
 
+    if not references and not opts["maps_only"]:
+        phase_source = "no phase stage (no region with a rhythm reference)"
     if references:
         # ---------------------------------------------------------- pass 2: lock-in phase
         t_phase = time.perf_counter()
@@ -775,8 +792,9 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
         thetas = {label: phase_mod.smooth_over_period(
             phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
             60.0 / ref.rate_mean_bpm / stack.frame_interval_s) for label, ref in references.items()}
-        bases = {label: preprocess.detrend(phase_mod.lockin_basis(th).T, basis).T
-                 for label, th in thetas.items()}
+        rows = {label: phase_mod.lockin_basis(th) for label, th in thetas.items()}
+        # b . detrend(x) = detrend(b) . x: the second read locks raw traces in against detrended rows
+        bases = {label: preprocess.detrend(r.T, basis).T for label, r in rows.items()}
         dominant = max(references, key=lambda lab: int((labels == lab).sum()))
         yield Progress(0, total, "phase")
 
@@ -784,11 +802,14 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
             return {"labels": labels[y0:y0 + ty, x0:x0 + tx]}
 
         if keep is not None:
-            weights = {label: phase_mod.band_lockin_weights(b, keep.band) for label, b in bases.items()}
+            # the kept spectra are of detrended traces, so the plain rows (compact spectra) apply
+            weights = {label: phase_mod.band_lockin_weights(r, keep.band) for label, r in rows.items()}
             leak = max(w[1] for w in weights.values())
             if leak > phase_mod.MAX_BAND_LEAK:
                 phase_source = (f"the references' lock-in rows leave the kept band of the spectrum "
                                 f"({leak:.1e} of their energy outside it)")
+                with contextlib.suppress(OSError):
+                    os.remove(keep.path)  # free the disk before reading the stack again
                 keep = None
         if keep is not None:
             phase_source = f"kept spectra (largest band leak {leak:.1e})"

@@ -154,11 +154,11 @@ def smooth_over_period(theta_unwrapped, period_frames: float) -> np.ndarray:
     return sm[w:w + u.size]
 
 
-#: Each coherence segment is a Hann window (in the reference's phase) this many
-#: cycles long at the least, overlapping its neighbours by half. Longer windows
-#: have narrower spectra (main lobe +-f/SEGMENT_HOP_CYCLES around the rate f), which
-#: is what lets the lock-in be read from a band of each pixel's spectrum.
-SEGMENT_HOP_CYCLES = 2
+#: Coherence segments are Hann windows (in the reference's phase) twice this many
+#: cycles long, each starting this many cycles after the one before. Their spectra
+#: lie within +-f/SEGMENT_HOP_CYCLES of the rate f (main lobe), which is what
+#: lets the lock-in be read from a band of each pixel's spectrum.
+SEGMENT_HOP_CYCLES = 1
 
 
 def lockin_basis(theta_frames, max_segments: int = 32) -> np.ndarray:
@@ -169,9 +169,11 @@ def lockin_basis(theta_frames, max_segments: int = 32) -> np.ndarray:
     the k-th of K overlapping segment windows (the coherence estimate).
 
     A segment window is a Hann window of the reference's phase: it spans
-    2g whole cycles of theta (g >= ``SEGMENT_HOP_CYCLES``) and starts g
-    cycles after the one before, so the windows follow a drifting rate and
-    add up to one between the first and last hop. Because each window (and
+    2g whole cycles of theta (g = ``SEGMENT_HOP_CYCLES``, more when a long
+    record would give more than ``max_segments``) and starts g cycles after
+    the one before, so the windows follow a drifting rate and add up to one
+    between the first and last hop. (A record of fewer than three cycles
+    gets two overlapping halves in time.) Because each window (and
     the whole-record taper) is smooth and spans whole cycles, the
     double-frequency term of cos(theta - phi) e^{-i theta} cancels in each
     sum (without that, the leak would bend the lag by up to 1/(2 pi cycles)),
@@ -193,9 +195,9 @@ def lockin_basis(theta_frames, max_segments: int = 32) -> np.ndarray:
     n_cycles = float(cycles[-1])
     hop = max(SEGMENT_HOP_CYCLES, int(np.ceil(n_cycles / (max_segments + 1))))
     n_seg = int(np.floor(n_cycles / hop)) - 1
-    if n_seg < 2:  # too few cycles for two segments: halves of the record
-        hop = n_cycles / 3.0
-        n_seg = 2
+    if n_seg < 2:  # too few cycles for two segments: two overlapping halves of the record, in time
+        cycles = np.arange(t) / max(t - 1, 1)
+        hop, n_seg = 1.0 / 3.0, 2
     basis = np.zeros((2 + 2 * n_seg, t), np.float32)
     basis[0] = taper * np.cos(th)
     basis[1] = taper * np.sin(th)
@@ -214,13 +216,13 @@ def kept_band_bins(rate_range_hz, bin_hz: float, n_bins: int) -> tuple[int, int]
     of :func:`lockin_basis` spread their spectra over about +-f/g around it
     (g = ``SEGMENT_HOP_CYCLES``), with sidelobes that fall off fast. The kept
     band is [f_lo (1 - 1/g), f_hi (1 + 1/g)] widened by ``KEPT_MARGIN_BINS``
-    on each side. Whether a particular reference's rows really lie inside is
+    on each side (with g = 1: from 0 to twice the top of the band). Whether a particular reference's rows really lie inside is
     checked when they are known (:func:`band_lockin_weights`).
 
     Examples
     --------
     >>> kept_band_bins((0.5, 3.0), 1 / 12, 301)
-    (0, 60)
+    (0, 78)
     """
     lo, hi = rate_range_hz
     g = SEGMENT_HOP_CYCLES
@@ -258,7 +260,7 @@ def band_lockin_weights(basis, band: tuple[int, int]) -> tuple[np.ndarray, float
     >>> b = lockin_basis(th)
     >>> w, leak = band_lockin_weights(b, kept_band_bins((0.5, 3.0), 1 / 12, 301))
     >>> x = np.cos(th - 0.7) + 0.3 * np.cos(3 * th)
-    >>> spec = np.fft.rfft(x)[:58]
+    >>> spec = np.fft.rfft(x)[slice(*kept_band_bins((0.5, 3.0), 1 / 12, 301))]
     >>> bool(np.allclose(w @ np.concatenate([spec.real, spec.imag]), b @ x, atol=1e-3)), leak < 1e-4
     (True, True)
     """

@@ -91,9 +91,12 @@ def _unwrap_coarse_to_fine(phase, mask, unwrap_phase):
     of its pixels (blocks at least half inside the mask); those are unwrapped
     by the same reliability-sorted algorithm, and each pixel takes the
     multiple of 2 pi that brings it closest to its block (or the nearest
-    block inside the mask). For a phase that changes by less than pi over a
-    block, this equals unwrapping every pixel, at a sixteenth of the cost;
-    averaging also makes the unwrapping path less sensitive to noisy pixels.
+    block inside the mask). For a phase that changes slowly over a block this
+    equals unwrapping every pixel, at a fraction of the cost. The result is
+    checked: if any two neighbouring pixels of the region then differ by pi
+    or more, or the blocks connect the region into a different number of
+    parts than its pixels do (a one-pixel neck), every pixel is unwrapped
+    instead.
     """
     b = COARSE_UNWRAP_BLOCK
     h, w = phase.shape
@@ -112,7 +115,14 @@ def _unwrap_coarse_to_fine(phase, mask, unwrap_phase):
     _, (iy, ix) = ndi.distance_transform_edt(~ok, return_indices=True)
     coarse = coarse[iy, ix]
     ref = np.repeat(np.repeat(coarse, b, axis=0), b, axis=1)[:h, :w]
-    return phase + 2 * np.pi * np.round((ref - phase) / (2 * np.pi))
+    out = phase + 2 * np.pi * np.round((ref - phase) / (2 * np.pi))
+    # The shortcut holds only where the phase is smooth on the scale of a block and the
+    # blocks connect the region as its pixels do; otherwise unwrap every pixel.
+    steps_ok = all(np.all(np.abs(np.diff(out, axis=ax))[mask_pair] < np.pi)
+                   for ax, mask_pair in ((0, mask[1:] & mask[:-1]), (1, mask[:, 1:] & mask[:, :-1])))
+    if not steps_ok or ndi.label(ok)[1] != ndi.label(mask)[1]:
+        return np.asarray(unwrap_phase(np.ma.array(phase, mask=~mask)).filled(np.nan))
+    return out
 
 
 def local_gradient(field, mask, radius: int = 3, min_points: int = 6) -> tuple[np.ndarray, np.ndarray]:
@@ -282,7 +292,9 @@ def region_propagation(delay_s, regions, periods: dict, pixel_size_um=None, fram
     out = {}
     boxes = ndi.find_objects(np.asarray(regions))
     for label, period in periods.items():
-        if label > len(boxes) or boxes[label - 1] is None:
+        if not 0 < label <= len(boxes) or boxes[label - 1] is None:  # no pixels: nothing to fit
+            out[label] = {"model": "none", "speed_um_s": np.nan, "direction_deg": np.nan,
+                          "origin_yx": (np.nan, np.nan), "rms_s": np.nan}
             continue
         # Everything below is local to the region: work on its bounding box
         # (a neighbourhood fit only sees pixels inside the mask anyway).
