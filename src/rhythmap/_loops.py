@@ -276,6 +276,32 @@ def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
             for x in range(width):
                 sums[t, first + col_bin[x]] += acc[x]
 
+@numba.jit(**_JIT)
+def kept_band(spec, first, coef, trend_re, trend_im, out):
+    """Bins ``first .. first + B - 1`` of the detrended traces' plain spectrum.
+
+    ``spec`` (F, n) complex64 is the rFFT of the traces, ``coef`` (K, n) their
+    trend coefficients and ``trend_re/im`` (B, K) the trend components' plain
+    spectrum in those bins. Writes ``out`` (2, B, n) float32: real parts, then
+    imaginary parts, of spec - trend @ coef (a fixed order per trace).
+    """
+    n_out = out.shape[1]
+    n = spec.shape[1]
+    n_k = coef.shape[0]
+    for b in range(n_out):
+        row = spec[first + b]
+        re = out[0, b]
+        im = out[1, b]
+        for j in range(n):
+            re[j] = row[j].real
+            im[j] = row[j].imag
+        for i in range(n_k):
+            a, c = trend_re[b, i], trend_im[b, i]
+            for j in range(n):
+                re[j] -= a * coef[i, j]
+                im[j] -= c * coef[i, j]
+
+
 def warm_up() -> None:
     """Compile (or load from the cache) every loop for the common input types.
 
@@ -289,6 +315,8 @@ def warm_up() -> None:
     windowed_power(spec, 8, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32),
                    np.zeros((2, 1), np.float32), power, np.empty(3, np.float32))
     noise_ordinates(power, 1, np.empty((3, 2), np.float32))
+    kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
+              np.empty((2, 2, 3), np.float32))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32))
     add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),

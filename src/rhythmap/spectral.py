@@ -249,7 +249,9 @@ class SpectralKernel:
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
         if keep_band is not None:  # the trend components' plain spectrum in the kept bins
-            self.keep_trend = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]].astype(np.complex64)
+            q_plain = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]]
+            self.keep_re = np.ascontiguousarray(q_plain.real, np.float32)
+            self.keep_im = np.ascontiguousarray(q_plain.imag, np.float32)
 
     def _spectrum(self, traces):
         """Plain rFFT along time of (T, n) traces and their trend coefficients."""
@@ -282,10 +284,12 @@ class SpectralKernel:
         plan = self.plan
         spec, coef = self._spectrum(traces)
         if kept is not None:
-            a, b = self.keep_band
-            band = spec[a:b] - self.keep_trend @ coef.astype(np.complex64)
-            kept[0] = band.real
-            kept[1] = band.imag
+            if kept.flags.c_contiguous:
+                _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept)
+            else:  # a band of a tile's block: the loop writes a contiguous buffer
+                buf = np.empty(kept.shape, np.float32)
+                _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, buf)
+                kept[...] = buf
         power, dc = self._power(spec, coef)
         n_bins, n = power.shape
         first = plan.trend_bins + 1
