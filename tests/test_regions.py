@@ -167,3 +167,38 @@ def test_block_unwrapping_steps_aside_where_it_would_be_wrong(case):
     fine = unwrap_phase(np.ma.array(2 * np.pi * wrapped, mask=~mask)).filled(np.nan) / (2 * np.pi)
     fine += wrapped[150, 10] - fine[150, 10]
     np.testing.assert_allclose(got[mask], fine[mask], atol=1e-9)
+
+
+def _components_by_scipy(rate, ok, tol):
+    """The reference: the same neighbour rule as a sparse graph, scipy's connected_components."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    h, w = ok.shape
+    idx = np.arange(h * w).reshape(h, w)
+    rows, cols = [], []
+    for a, b in ((np.s_[:, :-1], np.s_[:, 1:]), (np.s_[:-1, :], np.s_[1:, :])):
+        keep = ok[a] & ok[b] & (np.abs(rate[a] - rate[b]) <= np.minimum(tol[a], tol[b]))
+        rows.append(idx[a][keep])
+        cols.append(idx[b][keep])
+    graph = coo_matrix((np.ones(sum(r.size for r in rows), np.int8), (np.concatenate(rows), np.concatenate(cols))),
+                       shape=(h * w, h * w))
+    _, comp = connected_components(graph, directed=False)
+    return np.where(ok, comp.reshape(h, w), -1)
+
+
+def test_rate_components_equal_scipy_connected_components(rng):
+    from rhythmap import _loops
+
+    rate = np.round(rng.uniform(60, 66, (90, 120)), 0)  # plateaus of equal rate that touch and split
+    rate[20:50, 30:90] = 90.0
+    ok = rng.random((90, 120)) < 0.8
+    tol = regions.rate_tolerance_bpm(np.where(ok, rate, 0.0), 1.0)
+    got = np.empty(ok.shape, np.int64)
+    _loops.rate_components(rate, ok, tol, got)
+    want = _components_by_scipy(rate, ok, tol)
+    # Same partition, same order (by each component's first pixel); scipy also numbers the
+    # pixels left out, so compare ranks.
+    np.testing.assert_array_equal(got[~ok], -1)
+    np.testing.assert_array_equal(got[ok], np.unique(want[ok], return_inverse=True)[1].ravel())
+    assert got.max() > 50

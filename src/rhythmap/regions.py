@@ -14,8 +14,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import scipy.ndimage as ndi
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
+
+from . import _loops
 
 
 def rate_tolerance_bpm(rate_bpm, bin_bpm: float) -> np.ndarray:
@@ -56,25 +56,11 @@ def segment(rate_bpm, detected, *, bin_bpm: float, min_area_px: int) -> np.ndarr
     rate = np.asarray(rate_bpm, float)
     ok = np.asarray(detected, bool) & np.isfinite(rate)
     h, w = ok.shape
-    idx = np.arange(h * w).reshape(h, w)
     tol = rate_tolerance_bpm(np.where(ok, rate, 0.0), bin_bpm)
-    rows, cols = [], []
-    for a, b, ta, tb, ra, rb in (
-        (idx[:, :-1], idx[:, 1:], tol[:, :-1], tol[:, 1:], rate[:, :-1], rate[:, 1:]),
-        (idx[:-1, :], idx[1:, :], tol[:-1, :], tol[1:, :], rate[:-1, :], rate[1:, :]),
-    ):
-        oka = ok.ravel()[a.ravel()] & ok.ravel()[b.ravel()]
-        close = np.abs(ra - rb).ravel() <= np.minimum(ta, tb).ravel()
-        keep = oka & close
-        rows.append(a.ravel()[keep])
-        cols.append(b.ravel()[keep])
-    r = np.concatenate(rows)
-    c = np.concatenate(cols)
-    graph = coo_matrix((np.ones(r.size, np.int8), (r, c)), shape=(h * w, h * w))
-    _, comp = connected_components(graph, directed=False)
-    comp = comp.reshape(h, w)
-    comp = np.where(ok, comp, -1)
-    ids, counts = np.unique(comp[comp >= 0], return_counts=True)
+    comp = np.empty((h, w), np.int64)
+    _loops.rate_components(np.ascontiguousarray(rate), np.ascontiguousarray(ok), np.ascontiguousarray(tol), comp)
+    counts = np.bincount(comp[comp >= 0].ravel())
+    ids = np.arange(counts.size)
     big = ids[counts >= min_area_px]
     order = big[np.argsort(-counts[counts >= min_area_px], kind="stable")]
     kept = np.isin(comp, order)
