@@ -152,3 +152,20 @@ def test_coherence_of_noise_stays_low_with_smooth_segments(rng):
     assert (coh >= engine.COHERENT).mean() < 0.04
     locked = np.cos(theta[:, None] - rng.uniform(0, 6, 200)) + rng.normal(0, 0.3, (t, 200))
     assert np.median(phase_mod.lockin(locked, phase_mod.lockin_basis(theta))[1]) > 0.95
+
+
+def test_compiled_resultant_equals_the_numpy_formula(rng):
+    """Coherence = |sum_k z_k / |z_k|| / K (Mardia & Jupp 2000), segments with z_k = 0 counting as nothing."""
+    from rhythmap import _loops
+
+    proj = rng.normal(0, 1, (2 + 2 * 9, 500)).astype(np.float32)
+    proj[2:4, :7] = 0.0
+    proj[2:, 7] = np.tile([1.0, -1.0], 9)  # every segment at the same phase: 1
+    got = np.empty(500, np.float32)
+    _loops.segment_resultant(proj, got)
+    re, im = proj[2::2].astype(float), -proj[3::2].astype(float)
+    mag = np.hypot(re, im)
+    safe = np.where(mag > 0, mag, 1.0)
+    want = np.hypot((re / safe).sum(axis=0), (im / safe).sum(axis=0)) / re.shape[0]
+    np.testing.assert_allclose(got, want, atol=2e-6)
+    assert got[7] == pytest.approx(1.0)

@@ -333,17 +333,21 @@ class KeptSpectra:
         finally:
             os.close(fd)
 
-    def read(self, offset: int, n_px: int) -> np.ndarray:
-        out = np.empty((2, self.n_bins, n_px), np.float32)
-        view = memoryview(out).cast("B")
+    def read(self, offset: int, n_px: int, bins=None) -> np.ndarray:
+        """A tile's block, (2, n, n_px) float32: all kept bins, or only ``bins`` (i0, i1) of them."""
+        i0, i1 = bins if bins is not None else (0, self.n_bins)
+        out = np.empty((2, i1 - i0, n_px), np.float32)
+        row = n_px * 4
         with open(self.path, "rb", buffering=0) as f:
-            f.seek(offset)
-            done = 0
-            while done < len(view):
-                got = f.readinto(view[done:])
-                if not got:
-                    raise KernelError(f"the kept spectra file {self.path} is shorter than expected")
-                done += got
+            for part in (0, 1):  # the real parts' rows, then the imaginary parts'
+                view = memoryview(out[part]).cast("B")
+                f.seek(offset + (part * self.n_bins + i0) * row)
+                done = 0
+                while done < len(view):
+                    got = f.readinto(view[done:])
+                    if not got:
+                        raise KernelError(f"the kept spectra file {self.path} is shorter than expected")
+                    done += got
         return out
 
 
@@ -584,16 +588,19 @@ def phase_tile_kernel(block, y0, x0, *, halo, labels, lockin_bases, dominant):
 
 
 @_kernel
-def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_bases, band_weights, dominant):
+def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_bases, band_weights, dominant,
+                           bins=None):
     """The phase stage on one tile from the spectra the maps pass kept: no read of the stack.
 
     Each lock-in sum is one matrix product of the tile's kept bins with the
     reference's band weights (:func:`rhythmap.phase.band_lockin_weights`);
     the kept spectra are of the pooled, detrended traces, so nothing else is
     needed. Same results as :func:`phase_tile_kernel` up to the band leak
-    checked by the engine.
+    checked by the engine. ``bins`` (i0, i1): read only kept bins i0..i1-1
+    (the weights are for those).
     """
-    spectra = keep.read(keep_offset, ty * tx).reshape(2 * keep.n_bins, ty * tx)
+    spectra = keep.read(keep_offset, ty * tx, bins)
+    spectra = spectra.reshape(2 * spectra.shape[1], ty * tx)
     lab = labels.ravel()
     present = np.unique(lab).tolist()
     refs = sorted({label if label in lockin_bases else dominant for label in present})
@@ -803,8 +810,12 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
 
         if keep is not None:
             # the kept spectra are of detrended traces, so the plain rows (compact spectra) apply
-            weights = {label: phase_mod.band_lockin_weights(r, keep.band) for label, r in rows.items()}
-            leak = max(w[1] for w in weights.values())
+            leak = max(phase_mod.band_lockin_weights(r, keep.band)[1] for r in rows.values())
+            if leak <= phase_mod.MAX_BAND_LEAK:
+                # read and multiply only the bins these references need
+                use = phase_mod.narrowest_band(list(rows.values()), keep.band, NARROW_LEAK)
+                weights = {label: phase_mod.band_lockin_weights(r, use) for label, r in rows.items()}
+                leak = max(w[1] for w in weights.values())
             if leak > phase_mod.MAX_BAND_LEAK:
                 phase_source = (f"the references' lock-in rows leave the kept band of the spectrum "
                                 f"({leak:.1e} of their energy outside it)")
@@ -812,9 +823,11 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
                     os.remove(keep.path)  # free the disk before reading the stack again
                 keep = None
         if keep is not None:
-            phase_source = f"kept spectra (largest band leak {leak:.1e})"
+            phase_source = (f"kept spectra (bins {use[0]}-{use[1] - 1} of {keep.band[0]}-{keep.band[1] - 1}, "
+                            f"largest band leak {leak:.1e})")
             tasks2 = _kept_tasks(keep, tiles_plan, kept_phase_tile_kernel, tile_labels, lockin_bases=bases,
-                                 band_weights={label: w[0] for label, w in weights.items()}, dominant=dominant)
+                                 band_weights={label: w[0] for label, w in weights.items()}, dominant=dominant,
+                                 bins=(use[0] - keep.band[0], use[1] - keep.band[0]))
         else:
             phase_source = f"second read ({phase_source})"
             tasks2 = _pass_tasks(stack.data, tiles_plan, phase_tile_kernel, tile_labels,
@@ -901,6 +914,11 @@ def _preload_later_stages() -> None:
     if "ripser" not in sys.modules:
         threading.Thread(target=load, name="rhythmap-preload", daemon=True).start()
 
+
+#: Energy share of the lock-in rows the phase stage may leave out when it reads fewer
+#: of the kept bins (a tenth of phase.MAX_BAND_LEAK: the sums then stay within about
+#: 0.3 % of their norms, and coherence within a few thousandths of the second read).
+NARROW_LEAK = 1e-5
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.
 COHERENT = 0.5
