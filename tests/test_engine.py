@@ -216,3 +216,36 @@ def test_a_short_last_tile_joins_the_one_before():
     assert engine._split(100, 33, 2) == (33, 33, 34)
     assert engine._split(100, 33, 1) == (33, 33, 33, 1)
     assert engine._split(96, 32, 5) == (32, 32, 32)
+
+
+def test_gram_bins_gathered_over_tiles_and_labelled_by_majority(rng):
+    """The vectorised gathering equals adding each bin's parts tile by tile (the plain loop)."""
+    from rhythmap import regions as regions_mod
+
+    labels = rng.integers(0, 4, (37, 45)).astype(np.int32)
+    labels[:8, :8] = 0  # a bin with no labelled pixel
+    b = 4
+    results = []
+    for y0, ty in ((0, 20), (20, 17)):  # tile edges at 20 and 23 cut bins in two
+        for x0, tx in ((0, 23), (23, 22)):
+            r0, c0 = y0 // b, x0 // b
+            r1, c1 = (y0 + ty - 1) // b, (x0 + tx - 1) // b
+            ids = np.array([(by << 32) + bx for by in range(r0, r1 + 1) for bx in range(c0, c1 + 1)], np.int64)
+            results.append({"bins": ids, "bin_sums": rng.normal(0, 1, (6, ids.size)).astype(np.float32),
+                            "bin_counts": rng.integers(1, 9, ids.size)})
+    traces, lab = engine._gather_bins(results, labels, b)
+    sums, counts = {}, {}
+    for r in results:
+        for i, bid in enumerate(r["bins"].tolist()):
+            sums[bid] = sums.get(bid, 0) + r["bin_sums"][:, i]
+            counts[bid] = counts.get(bid, 0) + int(r["bin_counts"][i])
+    ids = sorted(sums)
+    np.testing.assert_array_equal(traces, np.stack([sums[k] / np.float32(counts[k]) for k in ids], axis=1))
+    want = []
+    for bid in ids:
+        block = labels[(bid >> 32) * b:(bid >> 32) * b + b, (bid & 0xFFFFFFFF) * b:(bid & 0xFFFFFFFF) * b + b]
+        vals = block[block > 0]
+        want.append(np.bincount(vals).argmax() if vals.size else 0)
+    np.testing.assert_array_equal(lab, want)
+    assert lab[0] == 0 and len(set(want)) > 2
+    np.testing.assert_array_equal(regions_mod.bin_labels(labels, np.array(ids), b), want)

@@ -1043,21 +1043,15 @@ TILE_LOOP_PX = 16
 
 def _gather_bins(results, labels, gram_bin):
     """Mean trace of every Gram bin over all tiles, and the region each bin belongs to."""
-    sums: dict[int, np.ndarray] = {}
-    counts: dict[int, int] = {}
-    for r in results:
-        for i, bid in enumerate(r["bins"].tolist()):
-            if bid in sums:
-                sums[bid] += r["bin_sums"][:, i]
-                counts[bid] += int(r["bin_counts"][i])
-            else:
-                sums[bid] = r["bin_sums"][:, i].copy()
-                counts[bid] = int(r["bin_counts"][i])
-    ids = np.array(sorted(sums), np.int64)
-    if ids.size == 0:
+    all_ids = np.concatenate([r["bins"] for r in results]) if results else np.zeros(0, np.int64)
+    if all_ids.size == 0:
         return np.zeros((0, 0), np.float32), np.zeros(0, np.int32)
-    traces = np.stack([sums[b] / counts[b] for b in ids.tolist()], axis=1)
-    return traces, regions_mod.bin_labels(labels, ids, gram_bin)
+    # A bin cut by a tile edge has a part in each tile: add the parts in tile order.
+    order = np.argsort(all_ids, kind="stable")
+    ids, start = np.unique(all_ids[order], return_index=True)
+    sums = np.add.reduceat(np.concatenate([r["bin_sums"] for r in results], axis=1)[:, order], start, axis=1)
+    counts = np.add.reduceat(np.concatenate([r["bin_counts"] for r in results])[order], start)
+    return sums / counts.astype(np.float32), regions_mod.bin_labels(labels, ids, gram_bin)
 
 
 def _drain(tasks, stage, cancel, source="the stack"):

@@ -130,15 +130,20 @@ def trim_pooling_rim(labels, amplitude, radius: int, *, ratio: float = 0.5) -> n
 
 def bin_labels(regions, bin_ids, gram_bin: int) -> np.ndarray:
     """The region of each Gram bin: the label most of its pixels carry (0 if none)."""
-    by = (np.asarray(bin_ids) >> 32).astype(int)
-    bx = (np.asarray(bin_ids) & 0xFFFFFFFF).astype(int)
-    out = np.zeros(by.size, np.int32)
-    for i, (y0, x0) in enumerate(zip(by * gram_bin, bx * gram_bin)):
-        block = regions[y0:y0 + gram_bin, x0:x0 + gram_bin]
-        vals = block[block > 0]
-        if vals.size:
-            out[i] = np.bincount(vals).argmax()
-    return out
+    by = (np.asarray(bin_ids) >> 32).astype(np.int64)
+    bx = (np.asarray(bin_ids) & 0xFFFFFFFF).astype(np.int64)
+    lab = np.asarray(regions)
+    h, w = lab.shape
+    ny, nx = -(-h // gram_bin), -(-w // gram_bin)
+    n_lab = int(lab.max()) + 1 if lab.size else 1
+    # one count per (bin, label): the bin's majority label among its labelled pixels
+    # (ties to the smaller label, as bincount().argmax() gives)
+    yy, xx = np.nonzero(lab > 0)
+    key = ((yy // gram_bin) * nx + xx // gram_bin) * n_lab + lab[yy, xx]
+    table = np.bincount(key, minlength=ny * nx * n_lab).reshape(ny * nx, n_lab)
+    best = table.argmax(axis=1).astype(np.int32)
+    best[table.max(axis=1) == 0] = 0
+    return best[by * nx + bx]
 
 
 TABLE_COLUMNS = (
