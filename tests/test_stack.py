@@ -117,24 +117,49 @@ def test_ome_zarr_written_by_the_reference_writer(tmp_path, frames):
     np.testing.assert_array_equal(s.data.compute(), frames)
 
 
-def test_video_file(tmp_path, rng):
+def _write_video(p, gray, rate=25):
     import av
 
-    p = tmp_path / "clip.avi"
-    n, h, w = 30, 32, 48
+    n, h, w = gray.shape
     with av.open(str(p), "w") as out:
-        stream = out.add_stream("ffv1", rate=25)  # lossless, so values survive
+        stream = out.add_stream("ffv1", rate=rate)  # lossless, so values survive
         stream.width, stream.height, stream.pix_fmt = w, h, "gray"
-        gray = rng.integers(0, 255, (n, h, w)).astype(np.uint8)
         for g in gray:
             for packet in stream.encode(av.VideoFrame.from_ndarray(g, format="gray")):
                 out.mux(packet)
         for packet in stream.encode():
             out.mux(packet)
+
+
+def test_video_file(tmp_path, rng):
+    p = tmp_path / "clip.avi"
+    n, h, w = 30, 32, 48
+    gray = rng.integers(0, 255, (n, h, w)).astype(np.uint8)
+    _write_video(p, gray)
     s = open_stack(p)
     assert s.shape == (n, h, w)
     assert s.frame_interval_s == pytest.approx(1 / 25)
+    assert s.data.dtype == np.uint8  # 8-bit luminance, a quarter of float32's memory
     np.testing.assert_array_equal(s.data.compute(), gray)
+
+
+def test_a_video_too_big_for_memory_points_to_convert_which_streams_it(tmp_path, rng, monkeypatch):
+    from rhythmap import stack as stack_mod
+    from rhythmap.convert import convert_stack
+
+    p = tmp_path / "long.avi"
+    gray = rng.integers(0, 255, (40, 24, 40)).astype(np.uint8)
+    _write_video(p, gray, rate=50)
+    monkeypatch.setattr(stack_mod, "video_memory_limit", lambda: 10 * 24 * 40)  # ten frames
+    with pytest.raises(InputError, match=r"rhythmap convert long.avi long.ome.zarr"):
+        open_stack(p)
+    # convert decodes frame by frame to disk, never the whole video in memory
+    monkeypatch.setattr(stack_mod, "_decode_video", lambda *a, **k: pytest.fail("decoded whole"))
+    out = convert_stack(p, tmp_path / "long.ome.zarr")
+    s = open_stack(out)
+    assert s.shape == gray.shape and s.frame_interval_s == pytest.approx(0.02)
+    np.testing.assert_array_equal(s.data.compute(), gray)
+    assert sorted(q.name for q in tmp_path.iterdir()) == ["long.avi", "long.ome.zarr"]  # no spill left
 
 
 def test_arrays(frames):

@@ -12,12 +12,13 @@ from __future__ import annotations
 import uuid
 from pathlib import Path
 
+import dask.array as da
 import numpy as np
 
 from . import omezarr
 from ._atomic import atomic_folder, check_replaceable
 from .errors import ResultExistsError
-from .stack import Stack, open_stack
+from .stack import VIDEO_SUFFIXES, Stack, decode_video_to_file, open_stack
 
 CHUNK_YX = 128
 
@@ -56,33 +57,52 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     whole frames) would be decoded again for every band; such a source is
     first decoded once, a block of frames at a time, into an uncompressed
     temporary file beside ``out`` (the stack's size on disk, removed at the
-    end), and the bands are read from that.
+    end), and the bands are read from that. A video file is decoded that way
+    too, frame by frame, so it is never held in memory whole.
     """
-    stack = source if isinstance(source, Stack) else open_stack(
-        source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
     dest = Path(out).resolve()
     if dest.exists() and not overwrite:
         raise ResultExistsError(f"{str(dest)!r} already exists; choose another name or add --overwrite.")
-    check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
-                      protect=[stack.source] if stack.source != "array" else [])
+    spill = None
+    video = not isinstance(source, Stack) and isinstance(source, (str, Path)) \
+        and str(source).lower().endswith(VIDEO_SUFFIXES) and Path(source).is_file()
+    if video:
+        # decoded once, frame by frame, to a raw file beside ``out`` (never whole in memory)
+        check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
+                          protect=[str(Path(source).resolve())])
+        spill = dest.parent / f".{dest.name}-frames.partial-{uuid.uuid4().hex[:8]}"
+        try:
+            shape, rate = decode_video_to_file(Path(source), spill)
+            if frame_interval_s is None and rate:
+                frame_interval_s = 1.0 / rate
+            frames = np.memmap(spill, dtype=np.uint8, mode="r", shape=shape)
+            stack = open_stack(da.from_array(frames, chunks=(shape[0], CHUNK_YX, shape[2])), frame_interval_s,
+                               pixel_size_um)
+        except BaseException:
+            spill.unlink(missing_ok=True)
+            raise
+    else:
+        stack = source if isinstance(source, Stack) else open_stack(
+            source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
+        check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
+                          protect=[stack.source] if stack.source != "array" else [])
     t, y, x = stack.shape
     dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
-    spill = None
     try:
         with atomic_folder(dest, overwrite=overwrite, create=False) as tmp:
             arr = omezarr.create_stack(tmp, (t, y, x), dtype, frame_interval_s=stack.frame_interval_s,
                                        pixel_size_um=stack.pixel_size_um, chunk_yx=CHUNK_YX)
             source = stack.data
-            if _decoded_per_band(stack.data):
+            if spill is None and _decoded_per_band(stack.data):
                 spill = dest.parent / f".{dest.name}-frames.partial-{uuid.uuid4().hex[:8]}"
                 source = _decode_once(stack.data, spill)
             for y0 in range(0, y, CHUNK_YX):
                 band = source[:, y0:y0 + CHUNK_YX, :]
-                band = np.asarray(band if spill is not None else band.compute(scheduler="threads"))
+                band = np.asarray(band if isinstance(band, np.ndarray) else band.compute(scheduler="threads"))
                 arr[:, y0:y0 + band.shape[1], :] = band.astype(dtype, copy=False)
                 if progress is not None:
                     progress(min(y, y0 + CHUNK_YX), y)
-            source = band = None  # let go of the spill file's memory map before it is removed
+            source = band = stack = frames = None  # let go of the spill file's memory map before it is removed
     finally:
         if spill is not None:
             spill.unlink(missing_ok=True)

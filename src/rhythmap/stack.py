@@ -441,11 +441,12 @@ def _open_zarr(path: Path, channel, plane):
 
 # --------------------------------------------------------------------------- video
 def _open_video(path: Path):
-    """Decode a video into memory as luminance frames.
+    """Decode a video into memory as 8-bit luminance frames.
 
     Videos are decoded once, whole: seeking in compressed video is not exact
-    enough for a lazy per-tile read. For long high-speed recordings convert to
-    Zarr first (``rhythmap convert``), which decodes in one streaming pass.
+    enough for a lazy per-tile read. A video whose frames would take more than
+    ``video_memory_limit()`` bytes is refused with a pointer to
+    ``rhythmap convert``, which decodes it in one streaming pass to disk.
     """
     frames, rate = _decode_video(path)
     data = da.from_array(frames, chunks=(frames.shape[0], 256, 256))
@@ -455,8 +456,17 @@ def _open_video(path: Path):
     return data, meta, {"axes": "TYX", "format": "video"}
 
 
+def video_memory_limit() -> int:
+    """Largest decoded video (bytes) :func:`open_stack` holds in memory: a quarter of the physical memory."""
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") // 4)
+    except (AttributeError, OSError, ValueError):
+        return 4 * 2**30
+
+
 def iter_video_frames(path: Path):
-    """Yield luminance frames (Y, X) float32 of a video one by one, and its frame rate first."""
+    """Yield a video's frame rate (or None) and its frame count (0 if unknown), then its frames
+    as 8-bit luminance (Y, X) arrays, one by one."""
     import av
 
     try:
@@ -465,17 +475,59 @@ def iter_video_frames(path: Path):
         raise InputError(f"cannot decode video {str(path)!r}: {exc}.") from None
     with container:
         stream = container.streams.video[0]
-        rate = float(stream.average_rate) if stream.average_rate else None
-        yield rate
+        yield (float(stream.average_rate) if stream.average_rate else None), int(stream.frames or 0)
         for frame in container.decode(stream):
-            yield frame.to_ndarray(format="gray").astype(np.float32)
+            yield frame.to_ndarray(format="gray")
 
 
-def _decode_video(path: Path):
+def _too_big(path: Path, n_bytes: int, limit: int) -> InputError:
+    return InputError(
+        f"video {str(path)!r} decodes to at least {n_bytes / 2**30:.1f} GB of frames, more than the "
+        f"{limit / 2**30:.1f} GB rhythmap holds in memory. Convert it once to a chunked OME-Zarr (decoded in one streaming pass to disk): "
+        f"`rhythmap convert {path.name} {path.stem}.ome.zarr`, then analyse the converted copy.")
+
+
+def _decode_video(path: Path, limit: int | None = None):
+    """All frames (T, Y, X) uint8 and the frame rate; refuses more than ``limit`` bytes of frames."""
+    limit = video_memory_limit() if limit is None else limit
     it = iter_video_frames(path)
-    rate = next(it)
-    frames = list(it)
-    if not frames:
+    rate, count = next(it)
+    out = None
+    n = 0
+    for frame in it:
+        if out is None:
+            if count * frame.nbytes > limit:
+                raise _too_big(path, count * frame.nbytes, limit)
+            out = np.empty((max(count, 16),) + frame.shape, np.uint8)
+        if n == out.shape[0]:  # the container's count was missing or short: grow
+            if 2 * out.nbytes > limit:
+                raise _too_big(path, 2 * out.nbytes, limit)
+            out = np.concatenate([out, np.empty_like(out)])
+        out[n] = frame
+        n += 1
+    if n == 0:
         raise InputError(f"video {str(path)!r} has no frames.")
-    return np.stack(frames), rate
+    return out[:n], rate
+
+
+def decode_video_to_file(path: Path, dest: Path):
+    """Decode a video frame by frame into a raw uint8 file: ((T, Y, X), frame rate or None).
+
+    Memory stays at one frame; the file is the decoded size. For
+    :func:`rhythmap.convert.convert_stack`.
+    """
+    it = iter_video_frames(path)
+    rate, _ = next(it)
+    n, shape = 0, None
+    with open(dest, "wb") as f:
+        for frame in it:
+            if shape is None:
+                shape = frame.shape
+            elif frame.shape != shape:
+                raise InputError(f"video {str(path)!r} changes frame size at frame {n}.")
+            f.write(np.ascontiguousarray(frame, np.uint8).tobytes())
+            n += 1
+    if n == 0:
+        raise InputError(f"video {str(path)!r} has no frames.")
+    return (n,) + tuple(shape), rate
 
