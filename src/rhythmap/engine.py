@@ -9,9 +9,13 @@ per pass; the tile size comes from a memory budget, not a constant. The same
 graph runs on dask's thread pool or, when a ``distributed.Client`` is active,
 on its workers.
 
-Pass 1 ("maps"): pooling, detrending, spectral maps, and the binned traces of
-the beating pixels that make the frame Gram matrix of the rhythm reference.
-Pass 2 ("phase"): lock-in of every pixel against its region's reference.
+Pass 1 ("maps"): pooling, detrending, spectral maps, the binned traces of
+the beating pixels that make the frame Gram matrix of the rhythm reference,
+and (when the phase will be needed) the band of every pixel's spectrum that
+the lock-in uses, kept in a temporary file (:class:`KeptSpectra`).
+The phase stage: lock-in of every pixel against its region's reference, from
+the kept spectra; or, when they cannot serve, pass 2, a second read of the
+stack (:func:`phase_tile_kernel`).
 """
 
 from __future__ import annotations
@@ -444,7 +448,7 @@ def _kernel(fn):
 def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, keep_offset=0):
     """Pass 1 on one tile: spectral maps and the binned traces of detected pixels.
 
-    ``block`` is the tile's 3 x 3 pieces from :func:`_tile_arrays` or one
+    ``block`` is the tile's 3 x 3 pieces from :func:`_pass_tasks` or one
     array padded by ``halo`` on each side. The tile is pooled and transformed
     one band of rows at a time (about
     ``spectral.FFT_BLOCK_COLUMNS`` pixels), so a band's traces stay in cache
@@ -608,9 +612,8 @@ def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_
     return _lockin_tile(y0, x0, ty, tx, lab, present, projected, lockin_bases, dominant)
 
 
-def _lockin_tile(y0, x0, ty, tx, lab, present, projected, lockin_bases, dominant):
+def _lockin_tile(y0, x0, ty, tx, lab, present, pooled_by_ref, lockin_bases, dominant):
     """Phase and coherence of a tile's pixels from their lock-in sums against each reference needed."""
-    pooled_by_ref = projected
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
     for label in present:
@@ -793,7 +796,7 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
     if not references and not opts["maps_only"]:
         phase_source = "no phase stage (no region with a rhythm reference)"
     if references:
-        # ---------------------------------------------------------- pass 2: lock-in phase
+        # ---------------------------------------------------------- phase stage: lock-in
         t_phase = time.perf_counter()
         frame_times = np.arange(t) * stack.frame_interval_s
         thetas = {label: phase_mod.smooth_over_period(
@@ -900,9 +903,10 @@ def _preload_later_stages() -> None:
 
     ripser (which imports scikit-learn and scipy.stats) takes about a second to
     import, and the references stage used to wait for it after the pass. The
-    tile threads of the pass spend nearly all their time outside the GIL, so
-    the import overlaps them at little cost. A failed import is left for the
-    stage itself to report.
+    tile threads release the GIL for most of their work, so the import runs
+    beside them; on two busy cores it mostly moves into the pass (measured
+    about even, DEVELOPERS.md). A failed import is left for the stage itself
+    to report.
     """
     def load():
         for name in ("ripser", "skimage.restoration"):

@@ -240,6 +240,18 @@ KEPT_MARGIN_BINS = 5
 MAX_BAND_LEAK = 1e-4
 
 
+def _row_spectra(basis) -> tuple[np.ndarray, np.ndarray]:
+    """rFFT of each row of a (R, T) matrix and the Parseval weight of each bin
+    (1 at 0 and at Nyquist, 2 elsewhere)."""
+    b = np.asarray(basis, float)
+    spec = np.fft.rfft(b, axis=1)
+    c = np.full(spec.shape[1], 2.0)
+    c[0] = 1.0
+    if b.shape[1] % 2 == 0:
+        c[-1] = 1.0
+    return spec, c
+
+
 def narrowest_band(bases, band: tuple[int, int], max_leak: float) -> tuple[int, int]:
     """The narrowest bins [lo, hi) inside ``band`` that hold all but ``max_leak`` of every row's energy.
 
@@ -256,11 +268,7 @@ def narrowest_band(bases, band: tuple[int, int], max_leak: float) -> tuple[int, 
     """
     energy = []
     for b in bases:
-        spec = np.fft.rfft(np.asarray(b, float), axis=1)
-        c = np.full(spec.shape[1], 2.0)
-        c[0] = 1.0
-        if b.shape[1] % 2 == 0:
-            c[-1] = 1.0
+        spec, c = _row_spectra(b)
         e = c * np.abs(spec) ** 2
         energy.append(e / np.maximum(e.sum(axis=1, keepdims=True), 1e-300))
     e = np.concatenate(energy)  # (rows, bins), each row sums to 1
@@ -298,13 +306,8 @@ def band_lockin_weights(basis, band: tuple[int, int]) -> tuple[np.ndarray, float
     >>> bool(np.allclose(w @ np.concatenate([spec.real, spec.imag]), b @ x, atol=1e-3)), leak < 1e-4
     (True, True)
     """
-    b = np.asarray(basis, float)
-    t = b.shape[1]
-    spec = np.fft.rfft(b, axis=1)
-    c = np.full(spec.shape[1], 2.0)
-    c[0] = 1.0
-    if t % 2 == 0:
-        c[-1] = 1.0
+    t = np.shape(basis)[1]
+    spec, c = _row_spectra(basis)
     energy = (c * np.abs(spec) ** 2).sum(axis=1)
     a, z = band
     inside = (c[a:z] * np.abs(spec[:, a:z]) ** 2).sum(axis=1)
