@@ -216,8 +216,9 @@ def kept_band_bins(rate_range_hz, bin_hz: float, n_bins: int) -> tuple[int, int]
     of :func:`lockin_basis` spread their spectra over about +-f/g around it
     (g = ``SEGMENT_HOP_CYCLES``), with sidelobes that fall off fast. The kept
     band is [f_lo (1 - 1/g), f_hi (1 + 1/g)] widened by ``KEPT_MARGIN_BINS``
-    on each side (with g = 1: from 0 to twice the top of the band). Whether a particular reference's rows really lie inside is
-    checked when they are known (:func:`band_lockin_weights`).
+    on each side (with g = 1: from 0 to twice the top of the band). Whether
+    a particular reference's rows really lie inside is checked when they are
+    known (:func:`band_lockin_weights`).
 
     Examples
     --------
@@ -373,7 +374,7 @@ def lockin_from_projection(proj, basis) -> tuple[np.ndarray, np.ndarray, np.ndar
     z_re, z_im = proj[0], -proj[1]
     phase = np.mod(-np.arctan2(z_im, z_re), TWO_PI).astype(np.float32)
     coherence = np.empty(proj.shape[1], np.float32)
-    _loops.segment_resultant(proj, coherence)  # one pass over the segment rows (numpy took 5x longer)
+    _loops.segment_resultant(proj, coherence)  # one compiled pass over the segment rows
     taper_sum = float(np.hypot(b[0], b[1]).sum())
     amplitude = 2.0 * np.hypot(z_re, z_im) / taper_sum
     return phase, coherence, amplitude.astype(np.float32)
