@@ -520,7 +520,7 @@ class _TileBins:
         _loops.add_band_to_bins(traces.reshape(-1, rows, self.tx), detected.astype(np.float32).reshape(rows, self.tx),
                                 self.row_bin[r0:r1], self.col_bin, self.nx, self.sums)
         local = (self.row_bin[r0:r1, None] * self.nx + self.col_bin[None, :]).ravel()
-        np.add.at(self.counts, local[detected], 1)
+        self.counts += np.bincount(local[detected], minlength=self.counts.size)
 
     def finish(self):
         """``bins`` (global ids), ``bin_sums`` (T, n) and ``bin_counts`` of the bins holding a detected pixel."""
