@@ -61,6 +61,7 @@ def test_an_option_on_by_default_has_a_flag_to_turn_it_off(tmp_path, sample_tif)
     params = rhythmap.load_result(out).parameters
     assert params["phase_from_kept_spectra"] is False
     assert params["phase_source"] == "second read (phase_from_kept_spectra is off)"
+    assert "phase from a second read (phase_from_kept_spectra is off)" in p.stdout
 
 
 @pytest.mark.parametrize("args, match", [

@@ -174,6 +174,9 @@ def print_summary(result, out, stream=sys.stdout) -> None:
                      f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}")
     for w in result.parameters.get("warnings", []):
         lines.append(f"  warning: {w}")
+    source = str(result.parameters.get("phase_source", ""))
+    if source.startswith("second read"):  # the slower route: say why the stack was read twice
+        lines.append(f"  phase from a {source}")
     lines.append(f"  took {result.timings.get('total_s', float('nan')):.1f} s")
     lines.append("  " + CAUTION)
     print("\n".join(lines), file=stream)
