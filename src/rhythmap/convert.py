@@ -68,8 +68,7 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
         and str(source).lower().endswith(VIDEO_SUFFIXES) and Path(source).is_file()
     if video:
         # decoded once, frame by frame, to a raw file beside ``out`` (never whole in memory)
-        check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
-                          protect=[str(Path(source).resolve())])
+        _check_destination(dest, [str(Path(source).resolve())])
         spill = dest.parent / f".{dest.name}-frames.partial-{uuid.uuid4().hex[:8]}"
         try:
             shape, rate = decode_video_to_file(Path(source), spill)
@@ -84,8 +83,7 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     else:
         stack = source if isinstance(source, Stack) else open_stack(
             source, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
-        check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
-                          protect=[stack.source] if stack.source != "array" else [])
+        _check_destination(dest, [stack.source] if stack.source != "array" else [])
     t, y, x = stack.shape
     dtype = stack.data.dtype if stack.data.dtype != np.float64 else np.dtype(np.float32)
     try:
@@ -107,6 +105,12 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
         if spill is not None:
             spill.unlink(missing_ok=True)
     return dest
+
+
+def _check_destination(dest: Path, protect: list) -> None:
+    """An existing ``dest`` may only be replaced if it is a converted stack and not the input itself."""
+    check_replaceable(dest, lambda p: (p / "zarr.json").exists() and (p / "0").exists(), "converted stack",
+                      protect=protect)
 
 
 def _decoded_per_band(data) -> bool:

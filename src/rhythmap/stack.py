@@ -476,15 +476,22 @@ def iter_video_frames(path: Path):
     with container:
         stream = container.streams.video[0]
         yield (float(stream.average_rate) if stream.average_rate else None), int(stream.frames or 0)
-        for frame in container.decode(stream):
-            yield frame.to_ndarray(format="gray")
+        shape = None
+        for n, frame in enumerate(container.decode(stream)):
+            gray = frame.to_ndarray(format="gray")
+            if shape is None:
+                shape = gray.shape
+            elif gray.shape != shape:
+                raise InputError(f"video {str(path)!r} changes frame size at frame {n} ({shape} to "
+                                 f"{gray.shape}); rhythmap needs one frame size throughout.")
+            yield gray
 
 
 def _too_big(path: Path, n_bytes: int, limit: int) -> InputError:
     return InputError(
         f"video {str(path)!r} decodes to at least {n_bytes / 2**30:.1f} GB of frames, more than the "
-        f"{limit / 2**30:.1f} GB rhythmap holds in memory. Convert it once to a chunked OME-Zarr (decoded in one streaming pass to disk): "
-        f"`rhythmap convert {path.name} {path.stem}.ome.zarr`, then analyse the converted copy.")
+        f"{limit / 2**30:.1f} GB rhythmap holds in memory. Convert it once to a chunked OME-Zarr "
+        f"(decoded in one streaming pass to disk): `rhythmap convert {path.name} {path.stem}.ome.zarr`, then analyse the converted copy.")
 
 
 def _decode_video(path: Path, limit: int | None = None):
@@ -520,11 +527,8 @@ def decode_video_to_file(path: Path, dest: Path):
     rate, _ = next(it)
     n, shape = 0, None
     with open(dest, "wb") as f:
-        for frame in it:
-            if shape is None:
-                shape = frame.shape
-            elif frame.shape != shape:
-                raise InputError(f"video {str(path)!r} changes frame size at frame {n}.")
+        for frame in it:  # one frame size throughout (checked by iter_video_frames)
+            shape = frame.shape
             f.write(np.ascontiguousarray(frame, np.uint8).tobytes())
             n += 1
     if n == 0:
