@@ -261,19 +261,25 @@ class PaddedTile:
             return [self.padded]
         return [p for row in self.grid for p in row]
 
-    def pooled_rows(self, r0: int, r1: int) -> np.ndarray:
-        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces."""
+    def pooled_rows(self, r0: int, r1: int, out=None) -> np.ndarray:
+        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces.
+
+        ``out``, if given, is a float32 array of at least that many values,
+        filled and returned reshaped (the engine reuses one for all bands of a
+        tile: a fresh megabyte array per band costs its page faults again).
+        """
         h = self.halo
         t, _, width = self.shape
         ty = self.shape[1] - 2 * h
+        shape = (t, r1 - r0, width - 2 * h)
+        pooled = np.empty(shape, np.float32) if out is None else out.reshape(-1)[:math.prod(shape)].reshape(shape)
         if self.grid is None:
-            pooled = preprocess.box_pool_rows(self.padded, h, r0, r1)
+            preprocess.box_pool_rows(self.padded, h, r0, r1, out=pooled)
         elif r0 >= h and r1 + h <= ty:  # rows inside the tile: read the middle pieces where they lie
-            pooled = np.empty((t, r1 - r0, width - 2 * h), np.float32)
             left, middle, right = self.grid[1]
             _loops.box_pool_rows_split(left, middle, right, h, r0 - h, r1 - h, pooled)
         else:  # rows reaching the top or bottom strip: copy them into one small buffer first
-            pooled = preprocess.box_pool_rows(self.rows(r0, r1), h, 0, r1 - r0)
+            preprocess.box_pool_rows(self.rows(r0, r1), h, 0, r1 - r0, out=pooled)
         return pooled.reshape(t, (r1 - r0) * (width - 2 * h))
 
     def rows(self, r0: int, r1: int) -> np.ndarray:
@@ -481,9 +487,10 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     kernel = spectral.SpectralKernel(plan, basis, keep_band=None if keep is None else keep.band)
     kept = None if keep is None else np.empty((2, keep.n_bins, ty * tx), np.float32)
     band_rows = max(1, spectral.FFT_BLOCK_COLUMNS // tx)
+    pooled = np.empty(t * min(ty, band_rows) * tx, np.float32)  # one buffer for every band
     for r0 in range(0, ty, band_rows):
         r1 = min(ty, r0 + band_rows)
-        traces = tile.pooled_rows(r0, r1)
+        traces = tile.pooled_rows(r0, r1, out=pooled)
         out = kernel.maps(traces, None if kept is None else kept[:, :, r0 * tx:r1 * tx])
         maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
         if bins is not None:
