@@ -51,6 +51,16 @@ def test_kept_spectra_give_the_phase_of_a_second_read(wave, second_read):
     assert np.nanmax(_circ_diff(2 * np.pi * kept.delay_s / period, 2 * np.pi * second_read.delay_s / period)) < 2e-3
 
 
+def test_kept_spectra_of_tiles_cut_into_many_bands(wave, second_read, monkeypatch):
+    """Each band of rows of a tile writes its own columns of the tile's kept block."""
+    monkeypatch.setattr(spectral, "FFT_BLOCK_COLUMNS", 30)  # a band of one row (tiles are ~20 x 22 here)
+    kept = rhythmap.analyze(wave, (40, 200))
+    ok = np.isfinite(second_read.phase_rad)
+    np.testing.assert_array_equal(np.isfinite(kept.phase_rad), ok)
+    assert np.max(_circ_diff(kept.phase_rad[ok], second_read.phase_rad[ok])) < 1e-3
+    np.testing.assert_allclose(kept.coherence, second_read.coherence, atol=5e-3)
+
+
 def test_band_weights_equal_the_time_domain_sums(rng):
     """Parseval on the rFFT bins (the definition: basis @ detrended traces)."""
     t, dt = 600, 0.02

@@ -256,9 +256,10 @@ def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
     += weight * trace, for the band's pixels (r, x) (weight 1 for a detected pixel, 0 otherwise).
 
     ``traces`` is (T, rows, width), ``weight`` (rows, width) float32,
-    ``row_bin`` (rows,) non-decreasing, ``col_bin`` (width,). Rows of one bin
-    row are summed first with the pixels innermost (vectorised), then each
-    column's sum goes to its bin.
+    ``row_bin`` (rows,) and ``col_bin`` (width,) non-decreasing. Rows of one
+    bin row are summed first with the pixels innermost (vectorised), then
+    each run of columns of one bin is summed and added to its bin once (not
+    column by column into the same place, a chain of dependent writes).
     """
     n_t, n_rows, width = traces.shape
     acc = np.empty(width, np.float32)
@@ -273,25 +274,32 @@ def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
                     acc[x] += traces[t, r, x] * weight[r, x]
                 r += 1
             first = br * n_bin_cols
-            for x in range(width):
-                sums[t, first + col_bin[x]] += acc[x]
+            x = 0
+            while x < width:
+                bc = col_bin[x]
+                run = np.float32(0.0)
+                while x < width and col_bin[x] == bc:
+                    run += acc[x]
+                    x += 1
+                sums[t, first + bc] += run
 
 @numba.jit(**_JIT)
-def kept_band(spec, first, coef, trend_re, trend_im, out):
+def kept_band(spec, first, coef, trend_re, trend_im, out, col0):
     """Bins ``first .. first + B - 1`` of the detrended traces' plain spectrum.
 
     ``spec`` (F, n) complex64 is the rFFT of the traces, ``coef`` (K, n) their
     trend coefficients and ``trend_re/im`` (B, K) the trend components' plain
-    spectrum in those bins. Writes ``out`` (2, B, n) float32: real parts, then
-    imaginary parts, of spec - trend @ coef (a fixed order per trace).
+    spectrum in those bins. Writes columns ``col0 .. col0 + n - 1`` of ``out``
+    (2, B, N) float32 (a tile's block, written band by band in place): real
+    parts, then imaginary parts, of spec - trend @ coef (a fixed order per trace).
     """
     n_out = out.shape[1]
     n = spec.shape[1]
     n_k = coef.shape[0]
     for b in range(n_out):
         row = spec[first + b]
-        re = out[0, b]
-        im = out[1, b]
+        re = out[0, b, col0:col0 + n]
+        im = out[1, b, col0:col0 + n]
         for j in range(n):
             re[j] = row[j].real
             im[j] = row[j].imag
@@ -393,7 +401,7 @@ def warm_up() -> None:
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
-              np.empty((2, 2, 3), np.float32))
+              np.empty((2, 2, 5), np.float32), 1)
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32))
     add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),

@@ -491,7 +491,7 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     for r0 in range(0, ty, band_rows):
         r1 = min(ty, r0 + band_rows)
         traces = tile.pooled_rows(r0, r1, out=pooled)
-        out = kernel.maps(traces, None if kept is None else kept[:, :, r0 * tx:r1 * tx])
+        out = kernel.maps(traces, kept, r0 * tx)
         maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
         if bins is not None:
             bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)

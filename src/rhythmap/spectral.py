@@ -285,23 +285,19 @@ class SpectralKernel:
         _loops.windowed_power(spec, self.plan.n_frames, coef, self.trend_re, self.trend_im, power, dc)
         return power, dc
 
-    def maps(self, traces, kept=None) -> np.ndarray:
+    def maps(self, traces, kept=None, kept_col=0) -> np.ndarray:
         """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
 
-        With ``kept`` ((2, b - a, n) float32) and the kernel's ``keep_band``
-        (a, b), also writes the real and imaginary parts of the detrended
-        traces' plain spectrum in bins a..b-1 (for the lock-in, see
-        :func:`rhythmap.phase.band_lockin_weights`).
+        With ``kept`` ((2, b - a, N) float32, C order) and the kernel's
+        ``keep_band`` (a, b), also writes the real and imaginary parts of the
+        detrended traces' plain spectrum in bins a..b-1 (for the lock-in, see
+        :func:`rhythmap.phase.band_lockin_weights`) to its columns
+        ``kept_col .. kept_col + n - 1``.
         """
         plan = self.plan
         spec, coef = self._spectrum(traces)
         if kept is not None:
-            if kept.flags.c_contiguous:
-                _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept)
-            else:  # a band of a tile's block: the loop writes a contiguous buffer
-                buf = np.empty(kept.shape, np.float32)
-                _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, buf)
-                kept[...] = buf
+            _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept, kept_col)
         power, dc = self._power(spec, coef, scratch=True)
         n_bins, n = power.shape
         first = plan.trend_bins + 1
