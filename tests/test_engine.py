@@ -249,3 +249,28 @@ def test_gram_bins_gathered_over_tiles_and_labelled_by_majority(rng):
     np.testing.assert_array_equal(lab, want)
     assert lab[0] == 0 and len(set(want)) > 2
     np.testing.assert_array_equal(regions_mod.bin_labels(labels, np.array(ids), b), want)
+
+
+def test_lockin_tile_routes_each_pixel_to_its_reference(rng):
+    """Pixels of a region with a reference lock in against it; every other pixel against the
+    dominant reference, for its coherence only (no phase). Checked pixel by pixel against
+    :func:`rhythmap.phase.lockin_from_projection` on each pixel's own column."""
+    from rhythmap import phase as phase_mod
+
+    t, ty, tx = 200, 6, 7
+    theta = {1: 2 * np.pi * 1.1 * np.arange(t) * 0.05, 2: 2 * np.pi * 1.7 * np.arange(t) * 0.05}
+    bases = {k: phase_mod.lockin_basis(v) for k, v in theta.items()}
+    lab = rng.choice([0, 1, 2, 3], ty * tx)  # 0: background, 3: a region without a reference
+    traces = rng.normal(0, 1, (t, ty * tx)).astype(np.float32)
+    proj = {k: (b @ traces).astype(np.float32) for k, b in bases.items()}
+    for present in ([0, 1, 2, 3], [1], [0, 3]):
+        sub = np.where(np.isin(lab, present), lab, present[0])
+        out = engine._lockin_tile(0, 0, ty, tx, sub, sorted(set(sub.tolist())), proj, bases, dominant=1)
+        for j, label in enumerate(sub):
+            ref = label if label in bases else 1
+            ph, coh, _ = phase_mod.lockin_from_projection(proj[ref][:, j:j + 1], bases[ref])
+            assert out["coherence"].ravel()[j] == pytest.approx(coh[0], abs=1e-6)
+            if label in bases:
+                assert out["phase"].ravel()[j] == pytest.approx(ph[0], abs=1e-6)
+            else:
+                assert np.isnan(out["phase"].ravel()[j])

@@ -620,16 +620,26 @@ def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_
 
 
 def _lockin_tile(y0, x0, ty, tx, lab, present, pooled_by_ref, lockin_bases, dominant):
-    """Phase and coherence of a tile's pixels from their lock-in sums against each reference needed."""
+    """Phase and coherence of a tile's pixels from their lock-in sums against each reference needed.
+
+    A pixel is locked in against its region's reference, or the dominant one
+    outside any region with a reference (coherence only: no phase there).
+    Pixels are grouped by reference; a tile that needs one reference (the
+    usual case) is done in one piece, with no copies of its columns.
+    """
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
+    by_ref: dict[int, list[int]] = {}
     for label in present:
-        sel = lab == label
-        ref_label = label if label in lockin_bases else dominant
+        by_ref.setdefault(label if label in lockin_bases else dominant, []).append(label)
+    for ref_label, labels in by_ref.items():
+        sel = slice(None) if len(by_ref) == 1 else np.isin(lab, labels)
         ph, c, _ = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], lockin_bases[ref_label])
         coh[sel] = c
-        if label in lockin_bases:
-            phase[sel] = ph
+        phase[sel] = ph
+    without = [label for label in present if label not in lockin_bases]
+    if without:  # no reference of their own: no phase
+        phase[np.isin(lab, without)] = np.nan
     return {"y0": y0, "x0": x0, "phase": phase.reshape(ty, tx), "coherence": coh.reshape(ty, tx)}
 
 
