@@ -284,22 +284,21 @@ def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
                 sums[t, first + bc] += run
 
 @numba.jit(**_JIT)
-def kept_band(spec, first, coef, trend_re, trend_im, out, col0):
+def kept_band(spec, first, coef, trend_re, trend_im, out):
     """Bins ``first .. first + B - 1`` of the detrended traces' plain spectrum.
 
     ``spec`` (F, n) complex64 is the rFFT of the traces, ``coef`` (K, n) their
     trend coefficients and ``trend_re/im`` (B, K) the trend components' plain
-    spectrum in those bins. Writes columns ``col0 .. col0 + n - 1`` of ``out``
-    (2, B, N) float32 (a tile's block, written band by band in place): real
-    parts, then imaginary parts, of spec - trend @ coef (a fixed order per trace).
+    spectrum in those bins. Writes ``out`` (2, B, n) float32: real parts, then
+    imaginary parts, of spec - trend @ coef (a fixed order per trace).
     """
     n_out = out.shape[1]
     n = spec.shape[1]
     n_k = coef.shape[0]
     for b in range(n_out):
         row = spec[first + b]
-        re = out[0, b, col0:col0 + n]
-        im = out[1, b, col0:col0 + n]
+        re = out[0, b]
+        im = out[1, b]
         for j in range(n):
             re[j] = row[j].real
             im[j] = row[j].imag
@@ -401,7 +400,7 @@ def warm_up() -> None:
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
-              np.empty((2, 2, 5), np.float32), 1)
+              np.empty((2, 2, 3), np.float32))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32))
     add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),

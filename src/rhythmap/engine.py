@@ -312,11 +312,14 @@ class PaddedTile:
 class KeptSpectra:
     """A temporary file holding, for every pixel, bins ``band`` of its detrended spectrum.
 
-    The maps pass writes each tile's block (2, n_bins, ty * tx) float32 (real
-    parts, then imaginary parts) at its own offset; the phase stage reads it
-    back instead of reading (and pooling, and detrending) the stack again.
-    Tiles are laid out row of tiles by row of tiles, so a tile at (y0, x0)
-    of height ty starts at pixel y0 * width + x0 * ty. Plain positioned
+    The maps pass transforms a tile one band of rows at a time and writes
+    each band's block (2, n_bins, band pixels) float32 (real parts, then
+    imaginary parts) as soon as it is made, from a small buffer that is
+    still in cache; the phase stage reads the bins it needs back instead of
+    reading (and pooling, and detrending) the stack again. Tiles are laid
+    out row of tiles by row of tiles, so a tile at (y0, x0) of height ty
+    starts at pixel y0 * width + x0 * ty, and its bands follow one another
+    (:meth:`band_rows` rows each, the last one shorter). Plain positioned
     reads and writes: any thread or process on this machine may use it, and
     it is held by the page cache, not by the process.
     """
@@ -324,16 +327,22 @@ class KeptSpectra:
     path: str
     band: tuple[int, int]
     width: int
+    band_columns: int = spectral.FFT_BLOCK_COLUMNS
 
     @property
     def n_bins(self) -> int:
         return self.band[1] - self.band[0]
+
+    def band_rows(self, tx: int) -> int:
+        """Rows of a tile tx pixels wide transformed (and kept) together."""
+        return max(1, self.band_columns // tx)
 
     def offset(self, y0: int, x0: int, ty: int) -> int:
         """Byte offset of the tile at (y0, x0) of height ty."""
         return 2 * self.n_bins * 4 * (y0 * self.width + x0 * ty)
 
     def write(self, offset: int, block: np.ndarray) -> None:
+        """Write a (2, n_bins, q) block at ``offset``."""
         view = memoryview(np.ascontiguousarray(block, np.float32)).cast("B")
         fd = os.open(self.path, os.O_WRONLY)
         try:
@@ -343,21 +352,26 @@ class KeptSpectra:
         finally:
             os.close(fd)
 
-    def read(self, offset: int, n_px: int, bins=None) -> np.ndarray:
-        """A tile's block, (2, n, n_px) float32: all kept bins, or only ``bins`` (i0, i1) of them."""
+    def read(self, offset: int, ty: int, tx: int, bins=None) -> np.ndarray:
+        """A tile's kept bins, (2, n, ty * tx) float32: all of them, or only ``bins`` (i0, i1)."""
         i0, i1 = bins if bins is not None else (0, self.n_bins)
+        n_px, step = ty * tx, self.band_rows(tx) * tx
         out = np.empty((2, i1 - i0, n_px), np.float32)
-        row = n_px * 4
+        buf = np.empty((i1 - i0) * min(step, n_px), np.float32)
         with open(self.path, "rb", buffering=0) as f:
-            for part in (0, 1):  # the real parts' rows, then the imaginary parts'
-                view = memoryview(out[part]).cast("B")
-                f.seek(offset + (part * self.n_bins + i0) * row)
-                done = 0
-                while done < len(view):
-                    got = f.readinto(view[done:])
-                    if not got:
-                        raise KernelError(f"the kept spectra file {self.path} is shorter than expected")
-                    done += got
+            for p0 in range(0, n_px, step):
+                q = min(step, n_px - p0)
+                part_buf = buf[:(i1 - i0) * q]
+                view = memoryview(part_buf).cast("B")
+                for part in (0, 1):  # the band's real parts' rows, then its imaginary parts'
+                    f.seek(offset + 4 * (2 * self.n_bins * p0 + (part * self.n_bins + i0) * q))
+                    done = 0
+                    while done < len(view):
+                        got = f.readinto(view[done:])
+                        if not got:
+                            raise KernelError(f"the kept spectra file {self.path} is shorter than expected")
+                        done += got
+                    out[part, :, p0:p0 + q] = part_buf.reshape(i1 - i0, q)
         return out
 
 
@@ -405,7 +419,7 @@ def _keep_spectra(shape, band, cleanup, client) -> tuple[KeptSpectra | None, str
     except OSError as exc:
         shutil.rmtree(folder, ignore_errors=True)
         return None, f"the kept spectra file could not be made in {base} ({exc})"
-    return KeptSpectra(path, tuple(int(v) for v in band), int(x)), ""
+    return KeptSpectra(path, tuple(int(v) for v in band), int(x), spectral.FFT_BLOCK_COLUMNS), ""
 
 
 def _kept_tasks(keep: KeptSpectra, tiles: TilePlan, fn, tile_kwargs, **kwargs) -> list:
@@ -469,9 +483,9 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     matrix.
 
     With ``keep`` (a :class:`KeptSpectra`), the band of each pixel's
-    detrended spectrum that the lock-in needs is also written to the kept
-    spectra's file at ``keep_offset`` (so the phase stage need not read the
-    stack again).
+    detrended spectrum that the lock-in needs is also written, band of rows
+    by band of rows, to the kept spectra's file from ``keep_offset`` on (so
+    the phase stage need not read the stack again).
     """
     tile = PaddedTile(block, halo)
     if np.issubdtype(tile.dtype, np.floating) and not all(np.isfinite(a).all() for a in tile.arrays()):
@@ -485,18 +499,20 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     maps = np.empty((len(PASS1_KEYS), ty, tx), np.float32)
     bins = None if gram_bin is None else _TileBins(t, ty, tx, y0, x0, gram_bin)
     kernel = spectral.SpectralKernel(plan, basis, keep_band=None if keep is None else keep.band)
-    kept = None if keep is None else np.empty((2, keep.n_bins, ty * tx), np.float32)
-    band_rows = max(1, spectral.FFT_BLOCK_COLUMNS // tx)
-    pooled = np.empty(t * min(ty, band_rows) * tx, np.float32)  # one buffer for every band
+    band_rows = spectral.FFT_BLOCK_COLUMNS // tx if keep is None else keep.band_rows(tx)
+    band_rows = min(ty, max(1, band_rows))
+    pooled = np.empty(t * band_rows * tx, np.float32)  # one buffer for every band
+    kept_buf = None if keep is None else np.empty(2 * keep.n_bins * band_rows * tx, np.float32)
     for r0 in range(0, ty, band_rows):
         r1 = min(ty, r0 + band_rows)
         traces = tile.pooled_rows(r0, r1, out=pooled)
-        out = kernel.maps(traces, kept, r0 * tx)
+        kept = None if keep is None else kept_buf[:2 * keep.n_bins * (r1 - r0) * tx].reshape(2, keep.n_bins, -1)
+        out = kernel.maps(traces, kept)
+        if kept is not None:  # written now, while the band's block is still in cache
+            keep.write(keep_offset + 4 * 2 * keep.n_bins * r0 * tx, kept)
         maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
         if bins is not None:
             bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)
-    if kept is not None:
-        keep.write(keep_offset, kept)
     result = {"y0": y0, "x0": x0, "maps": maps}
     if bins is not None:
         result.update(bins.finish())
@@ -610,7 +626,7 @@ def kept_phase_tile_kernel(y0, x0, ty, tx, *, keep, keep_offset, labels, lockin_
     checked by the engine. ``bins`` (i0, i1): read only kept bins i0..i1-1
     (the weights are for those).
     """
-    spectra = keep.read(keep_offset, ty * tx, bins)
+    spectra = keep.read(keep_offset, ty, tx, bins)
     spectra = spectra.reshape(2 * spectra.shape[1], ty * tx)
     lab = labels.ravel()
     present = np.unique(lab).tolist()

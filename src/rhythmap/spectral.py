@@ -285,19 +285,18 @@ class SpectralKernel:
         _loops.windowed_power(spec, self.plan.n_frames, coef, self.trend_re, self.trend_im, power, dc)
         return power, dc
 
-    def maps(self, traces, kept=None, kept_col=0) -> np.ndarray:
+    def maps(self, traces, kept=None) -> np.ndarray:
         """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
 
-        With ``kept`` ((2, b - a, N) float32, C order) and the kernel's
+        With ``kept`` ((2, b - a, n) float32, C order) and the kernel's
         ``keep_band`` (a, b), also writes the real and imaginary parts of the
         detrended traces' plain spectrum in bins a..b-1 (for the lock-in, see
-        :func:`rhythmap.phase.band_lockin_weights`) to its columns
-        ``kept_col .. kept_col + n - 1``.
+        :func:`rhythmap.phase.band_lockin_weights`).
         """
         plan = self.plan
         spec, coef = self._spectrum(traces)
         if kept is not None:
-            _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept, kept_col)
+            _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept)
         power, dc = self._power(spec, coef, scratch=True)
         n_bins, n = power.shape
         first = plan.trend_bins + 1
