@@ -147,8 +147,33 @@ def test_workers_on_other_machines_read_the_stack_again(tmp_path):
         assert keep is None and "not all on this machine" in why
         keep, why = engine._keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["127.0.0.1"]))
         assert keep is not None and why == ""
-        assert os.path.getsize(keep.path) == 2 * 8 * 4 * 100  # reserved at once
+        assert keep.bytes_per_pixel == 2 * 8 * 2 + 4  # 16-bit real and imaginary parts, a float32 scale
+        assert os.path.getsize(keep.path) == keep.bytes_per_pixel * 100  # reserved at once
     assert list(tmp_path.iterdir()) == []
+
+
+def test_kept_blocks_round_trip_within_half_a_step(tmp_path, rng):
+    """Each pixel is stored as 16-bit integers under its own scale: every value comes back within
+    half a step (1/65534 of the pixel's largest value), whatever the pixel's magnitude, bands and tiles apart."""
+    n_bins, ty, tx, width = 12, 6, 5, 10
+    keep = engine.KeptSpectra(str(tmp_path / "k.bin"), (3, 3 + n_bins), width, band_columns=2 * tx)
+    (tmp_path / "k.bin").write_bytes(b"\0" * keep.bytes_per_pixel * ty * width)
+    magnitude = 10.0 ** rng.uniform(-3, 8, ty * width)  # pixels of very different brightness
+    want = {}
+    for x0 in (0, tx):  # two tiles side by side, each written band of rows by band of rows
+        block = (rng.normal(0, 1, (2, n_bins, ty * tx)) * magnitude[None, None, x0 * ty:(x0 + tx) * ty])
+        want[x0] = block.astype(np.float32)
+        step = keep.band_rows(tx) * tx
+        for p0 in range(0, ty * tx, step):
+            band = np.array(want[x0][:, :, p0:p0 + step])
+            keep.write(keep.offset(0, x0, ty) + keep.bytes_per_pixel * p0, band)
+    for x0 in (0, tx):
+        got = keep.read(keep.offset(0, x0, ty), ty, tx, bins=(2, 9))
+        expect = want[x0][:, 2:9]
+        assert got.dtype == np.float32 and got.shape == expect.shape
+        peak = np.abs(want[x0]).max(axis=(0, 1))
+        assert np.all(np.abs(got - expect) <= peak * (0.5 / 32767 + 1e-6))
+        assert np.abs(got - expect).max() > 0  # stored at 16 bits, not 32
 
 
 def test_coherence_of_noise_stays_low_with_smooth_segments(rng):
