@@ -159,3 +159,28 @@ def test_constant_traces_have_no_peak_and_no_periodicity():
     out = spectral.spectral_maps(x, _plan(), trend_basis=trend_basis(T, DT, 0.25))
     assert (out["constant"] == 1).all() and (out["detected"] == 0).all()
     assert (out["peak_score"] == 0).all() and (out["periodicity"] == 0).all()
+
+
+@pytest.mark.parametrize("case", ["noise", "zeros", "ties", "peaks", "narrow"])
+def test_noise_median_is_numpys_partition_exactly(case):
+    """The compiled bisection returns the very ordinate numpy's partition puts at the median rank,
+    for blocks of any width (a short last block included), zeros, ties and huge peaks."""
+    from rhythmap import _loops
+
+    rng = np.random.default_rng(["noise", "zeros", "ties", "peaks", "narrow"].index(case))
+    n_bins, first = 301, 7
+    n = 3 if case == "narrow" else 200
+    power = (rng.exponential(size=(n_bins, n)) * 10.0 ** rng.uniform(-4, 6, n)).astype(np.float32)
+    if case == "zeros":
+        power[:, ::3] = 0.0
+        power[::2, 1::3] = 0.0
+    elif case == "ties":
+        power = np.round(power / power.max(axis=0) * 4).astype(np.float32)
+    elif case == "peaks":
+        power[first + 2 * rng.integers(0, 100, 40)] *= 1e8
+    m = (n_bins - first + 1) // 2
+    for rank in (m // 2, 0, m - 1):
+        got = np.empty(n, np.float32)
+        _loops.noise_median(power, first, rank, got)
+        want = np.partition(np.ascontiguousarray(power[first::2][:m].T), rank, axis=1)[:, rank]
+        np.testing.assert_array_equal(got, want)

@@ -303,12 +303,10 @@ class SpectralKernel:
         # White-noise level: the median ordinate above the trend bins is ln 2
         # times the mean of an exponential distribution, and hardly moved by a
         # few peaks. Every other ordinate: neighbouring Hann bins are correlated.
-        ordinates = self._work("ordinates", (n, (n_bins - first + 1) // 2), np.float32)
-        _loops.noise_ordinates(power, first, ordinates)
-        mid = ordinates.shape[1] // 2
-        ordinates.partition(mid, axis=1)
+        noise_median = np.empty(n, np.float32)
+        _loops.noise_median(power, first, ((n_bins - first + 1) // 2) // 2, noise_median)
         out = np.empty((len(MAP_KEYS), n), np.float32)
-        _loops.spectral_block(power, np.ascontiguousarray(ordinates[:, mid]), dc, plan.band_bins[0],
+        _loops.spectral_block(power, noise_median, dc, plan.band_bins[0],
                               plan.band_bins[1], plan.trend_bins, plan.threshold, plan.bin_hz, self.window_sum,
                               N_HARMONICS, out)
         return out
