@@ -412,6 +412,19 @@ def pack_fixed(block, packed, inverse):
                 out[j] = np.int16(v)
 
 
+@numba.jit(**_JIT)
+def unpack_fixed(packed, first, inverse, out, col0):
+    """Undo :func:`pack_fixed` for rows ``first .. first + B - 1`` of a (2, B_all, q) block:
+    ``out[p, b, col0 + j] = packed[p, first + b, j] * inverse[j]`` for out (2, B, N) float32."""
+    q = packed.shape[2]
+    for p in range(2):
+        for b in range(out.shape[1]):
+            src = packed[p, first + b]
+            dst = out[p, b]
+            for j in range(q):
+                dst[col0 + j] = np.float32(src[j]) * inverse[j]
+
+
 @numba.jit(nopython=True, nogil=True, cache=True, inline="always")
 def _root(parent, i):
     while parent[i] != i:
@@ -502,6 +515,7 @@ def warm_up() -> None:
     noise_median(power, 1, 1, np.empty(3, np.float32))
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
+    unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
               np.empty((2, 2, 3), np.float32))
