@@ -318,9 +318,10 @@ class KeptSpectra:
     again. A band of q pixels is stored as (2, n_bins, q) 16-bit integers
     (real parts, then imaginary parts), each pixel under its own scale (block
     floating point: its largest value becomes 32767), followed by the q
-    scales as float32 (:func:`rhythmap._loops.pack_fixed`): half the bytes
-    of float32 (writing them into the page cache was most of the cost of
-    keeping them), every value within 1.5e-5 of its pixel's largest. Tiles
+    step sizes (largest / 32767) as float32
+    (:func:`rhythmap._loops.pack_fixed`): half the bytes of float32 (writing
+    them into the page cache was most of the cost of keeping them), every
+    value within 1.5e-5 of its pixel's largest. Tiles
     are laid out row of tiles by row of tiles, so a tile at (y0, x0) of
     height ty starts at pixel y0 * width + x0 * ty; its bands
     (:meth:`band_rows` rows each, the last one shorter) follow one another.

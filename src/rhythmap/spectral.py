@@ -223,10 +223,10 @@ class SpectralKernel:
 
     The engine pools each band of a tile into a (T, n) block and calls
     :meth:`maps`; the steps after the FFT run in compiled loops
-    (:mod:`rhythmap._loops`). The kernel keeps its large scratch arrays from
-    one call to the next (a fresh megabyte array costs its page faults
-    again at every band), so one kernel must not be used by two threads at
-    once; the engine makes one per tile.
+    (:mod:`rhythmap._loops`). The kernel keeps its power array from one call
+    to the next (a fresh megabyte array costs its page faults again at every
+    band), so one kernel must not be used by two threads at once; the
+    engine makes one per tile.
 
     Examples
     --------
@@ -251,19 +251,11 @@ class SpectralKernel:
         self.trend_basis_t = np.ascontiguousarray(q.T)
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
-        self._scratch: dict[str, np.ndarray] = {}
+        self._power_scratch = np.empty(0, np.float32)
         if keep_band is not None:  # the trend components' plain spectrum in the kept bins
             q_plain = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]]
             self.keep_re = np.ascontiguousarray(q_plain.real, np.float32)
             self.keep_im = np.ascontiguousarray(q_plain.imag, np.float32)
-
-    def _work(self, name: str, shape: tuple, dtype) -> np.ndarray:
-        """A C-ordered scratch array of ``shape``, reused by later calls (its contents are not kept)."""
-        size = int(np.prod(shape))
-        buf = self._scratch.get(name)
-        if buf is None or buf.size < size or buf.dtype != dtype:
-            buf = self._scratch[name] = np.empty(size, dtype)
-        return buf[:size].reshape(shape)
 
     def _spectrum(self, traces):
         """Plain rFFT along time of (T, n) traces and their trend coefficients."""
@@ -280,7 +272,12 @@ class SpectralKernel:
         return self._power(*self._spectrum(traces))
 
     def _power(self, spec, coef, scratch=False):
-        power = self._work("power", spec.shape, np.float32) if scratch else np.empty(spec.shape, np.float32)
+        if scratch:  # the array of the call before, when it is large enough
+            if self._power_scratch.size < spec.size:
+                self._power_scratch = np.empty(spec.size, np.float32)
+            power = self._power_scratch[:spec.size].reshape(spec.shape)
+        else:
+            power = np.empty(spec.shape, np.float32)
         dc = np.empty(spec.shape[1], np.float32)
         _loops.windowed_power(spec, self.plan.n_frames, coef, self.trend_re, self.trend_im, power, dc)
         return power, dc
