@@ -202,3 +202,50 @@ def test_rate_components_equal_scipy_connected_components(rng):
     np.testing.assert_array_equal(got[~ok], -1)
     np.testing.assert_array_equal(got[ok], np.unique(want[ok], return_inverse=True)[1].ravel())
     assert got.max() > 50
+
+
+def _plane_gradient_by_uniform_filters(field, mask, radius=3, min_points=6):
+    """The local plane fit written with scipy's box filters (the definition the compiled loop follows)."""
+    import scipy.ndimage as ndi
+
+    f = np.asarray(field, float)
+    m = np.asarray(mask, bool) & np.isfinite(f)
+    yy, xx = np.mgrid[0:f.shape[0], 0:f.shape[1]].astype(float)
+    size = 2 * radius + 1
+    w = m.astype(float)
+    fz = np.where(m, f, 0.0)
+
+    def box(a):
+        return ndi.uniform_filter(a, size=size, mode="constant") * size * size
+
+    n = box(w)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        my, mx = box(w * yy) / n, box(w * xx) / n
+        syy = box(w * yy * yy) - n * my * my
+        sxx = box(w * xx * xx) - n * mx * mx
+        sxy = box(w * xx * yy) - n * mx * my
+        sf = box(fz)
+        sfy, sfx = box(fz * yy) - my * sf, box(fz * xx) - mx * sf
+        det = syy * sxx - sxy ** 2
+        gy, gx = (sxx * sfy - sxy * sfx) / det, (syy * sfx - sxy * sfy) / det
+    bad = ~m | (n < min_points - 1e-9) | ~(np.abs(det) > 1e-9)
+    gy[bad] = np.nan
+    gx[bad] = np.nan
+    return gy, gx
+
+
+def test_local_gradient_equals_the_box_filter_formulation(rng):
+    """Compiled box sums against scipy's uniform filters: a curved field with noise, holes, a ragged
+    mask, a one-pixel-wide line (no plane: NaN) and NaN values inside the mask."""
+    yy, xx = np.mgrid[0:90, 0:70].astype(float)
+    act = 1e-3 * np.hypot(yy - 20, xx - 50) + 1e-5 * rng.normal(size=yy.shape)
+    mask = (np.hypot(yy - 45, xx - 35) < 40) & (rng.random(yy.shape) > 0.1)
+    mask[:, 3] = False
+    mask[80:, 3] = True  # an isolated vertical line of pixels
+    act[mask & (rng.random(yy.shape) < 0.02)] = np.nan
+    for radius, min_points in ((3, 6), (1, 4)):
+        got = propagation.local_gradient(act, mask, radius, min_points)
+        want = _plane_gradient_by_uniform_filters(act, mask, radius, min_points)
+        for g, w in zip(got, want):
+            np.testing.assert_array_equal(np.isnan(g), np.isnan(w))
+            np.testing.assert_allclose(g[~np.isnan(g)], w[~np.isnan(w)], rtol=1e-7, atol=1e-12)

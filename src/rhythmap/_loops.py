@@ -425,6 +425,74 @@ def unpack_fixed(packed, first, inverse, out, col0):
                 dst[col0 + j] = np.float32(src[j]) * inverse[j]
 
 
+@numba.jit(**_JIT)
+def local_plane_gradient(field, ok, radius, min_points, gy, gx):
+    """Least-squares plane fit of ``field`` over each pixel's (2r+1)^2 window: ``gy``, ``gx`` (Y, X) float64.
+
+    Only pixels where ``ok`` take part (``field`` finite there). The nine
+    window sums (count, first and second moments of the coordinates, and the
+    field's sum and first moments) are box sums, taken along each row and
+    then down the columns, with the window cut at the image's edge; the
+    moments are then centred on the window's mean coordinates. A pixel not
+    ``ok``, with fewer than ``min_points`` window pixels, or whose window's
+    points lie on a line, gets NaN. See :func:`rhythmap.propagation.local_gradient`.
+    """
+    h, w = field.shape
+    n_q = 9
+    rows = np.zeros((n_q, h, w))  # box sums along each row
+    q = np.empty((n_q, w))
+    for y in range(h):
+        for x in range(w):
+            wv = 1.0 if ok[y, x] else 0.0
+            fv = field[y, x] if ok[y, x] else 0.0
+            q[0, x] = wv
+            q[1, x] = wv * y
+            q[2, x] = wv * x
+            q[3, x] = wv * y * y
+            q[4, x] = wv * x * x
+            q[5, x] = wv * x * y
+            q[6, x] = fv
+            q[7, x] = fv * y
+            q[8, x] = fv * x
+        for k in range(n_q):
+            out = rows[k, y]
+            src = q[k]
+            for dx in range(-radius, radius + 1):
+                for x in range(max(0, -dx), min(w, w - dx)):
+                    out[x] += src[x + dx]
+    s = np.empty((n_q, w))
+    for y in range(h):
+        for k in range(n_q):
+            for x in range(w):
+                s[k, x] = 0.0
+            for dy in range(-radius, radius + 1):
+                if 0 <= y + dy < h:
+                    src = rows[k, y + dy]
+                    for x in range(w):
+                        s[k, x] += src[x]
+        for x in range(w):
+            n = s[0, x]
+            if not ok[y, x] or n < min_points:
+                gy[y, x] = np.nan
+                gx[y, x] = np.nan
+                continue
+            my = s[1, x] / n
+            mx = s[2, x] / n
+            syy = s[3, x] - n * my * my
+            sxx = s[4, x] - n * mx * mx
+            sxy = s[5, x] - n * mx * my
+            sf = s[6, x]
+            sfy = s[7, x] - my * sf
+            sfx = s[8, x] - mx * sf
+            det = syy * sxx - sxy * sxy
+            if not abs(det) > 1e-9:
+                gy[y, x] = np.nan
+                gx[y, x] = np.nan
+                continue
+            gy[y, x] = (sxx * sfy - sxy * sfx) / det
+            gx[y, x] = (syy * sfx - sxy * sfy) / det
+
+
 @numba.jit(nopython=True, nogil=True, cache=True, inline="always")
 def _root(parent, i):
     while parent[i] != i:
@@ -516,6 +584,7 @@ def warm_up() -> None:
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
     unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
+    local_plane_gradient(np.ones((4, 4)), np.ones((4, 4), np.bool_), 1, 3, np.empty((4, 4)), np.empty((4, 4)))
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
               np.empty((2, 2, 3), np.float32))
