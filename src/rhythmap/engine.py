@@ -350,22 +350,25 @@ class KeptSpectra:
         """Byte offset of the tile at (y0, x0) of height ty."""
         return self.bytes_per_pixel * (y0 * self.width + x0 * ty)
 
-    def write(self, offset: int, block: np.ndarray) -> None:
-        """Store a band's (2, n_bins, q) float32 block at ``offset``."""
+    def write(self, offset: int, block: np.ndarray, fd: int | None = None) -> None:
+        """Store a band's (2, n_bins, q) float32 block at ``offset``, in one positioned write
+        (through ``fd``, the file opened for writing, when given: a tile opens it once)."""
         q = block.shape[2]
-        packed = np.empty(block.shape, np.int16)
-        inverse = np.empty(q, np.float32)
-        _loops.pack_fixed(np.ascontiguousarray(block, np.float32), packed, inverse)
-        fd = os.open(self.path, os.O_WRONLY)
+        raw = np.empty(self.bytes_per_pixel * q, np.uint8)
+        split = 2 * 2 * self.n_bins * q  # the 16-bit parts, then the step sizes
+        _loops.pack_fixed(np.ascontiguousarray(block, np.float32), raw[:split].view(np.int16).reshape(block.shape),
+                          raw[split:].view(np.float32))
+        own = fd is None
+        if own:
+            fd = os.open(self.path, os.O_WRONLY)
         try:
-            for data in (packed, inverse):
-                view = memoryview(data).cast("B")
-                done = 0
-                while done < len(view):
-                    done += os.pwrite(fd, view[done:], offset + done)
-                offset += len(view)
+            view = memoryview(raw)
+            done = 0
+            while done < len(view):
+                done += os.pwrite(fd, view[done:], offset + done)
         finally:
-            os.close(fd)
+            if own:
+                os.close(fd)
 
     def read(self, offset: int, ty: int, tx: int, bins=None) -> np.ndarray:
         """A tile's kept bins, (2, n, ty * tx) float32: all of them, or only ``bins`` (i0, i1).
@@ -523,16 +526,20 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     band_rows = min(ty, max(1, band_rows))
     pooled = np.empty(t * band_rows * tx, np.float32)  # one buffer for every band
     kept_buf = None if keep is None else np.empty(2 * keep.n_bins * band_rows * tx, np.float32)
-    for r0 in range(0, ty, band_rows):
-        r1 = min(ty, r0 + band_rows)
-        traces = tile.pooled_rows(r0, r1, out=pooled)
-        kept = None if keep is None else kept_buf[:2 * keep.n_bins * (r1 - r0) * tx].reshape(2, keep.n_bins, -1)
-        out = kernel.maps(traces, kept)
-        if kept is not None:  # written now, while the band's block is still in cache
-            keep.write(keep_offset + keep.bytes_per_pixel * r0 * tx, kept)
-        maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
-        if bins is not None:
-            bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)
+    with contextlib.ExitStack() as stack:
+        if keep is not None:
+            fd = os.open(keep.path, os.O_WRONLY)
+            stack.callback(os.close, fd)
+        for r0 in range(0, ty, band_rows):
+            r1 = min(ty, r0 + band_rows)
+            traces = tile.pooled_rows(r0, r1, out=pooled)
+            kept = None if keep is None else kept_buf[:2 * keep.n_bins * (r1 - r0) * tx].reshape(2, keep.n_bins, -1)
+            out = kernel.maps(traces, kept)
+            if kept is not None:  # written now, while the band's block is still in cache
+                keep.write(keep_offset + keep.bytes_per_pixel * r0 * tx, kept, fd)
+            maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)
+            if bins is not None:
+                bins.add(traces, out[PASS1_KEYS.index("detected")] > 0, r0, r1)
     result = {"y0": y0, "x0": x0, "maps": maps}
     if bins is not None:
         result.update(bins.finish())
