@@ -456,10 +456,13 @@ def local_plane_gradient(field, ok, radius, min_points, gy, gx):
             q[8, x] = fv * x
         for k in range(n_q):
             out = rows[k, y]
-            src = q[k]
             for dx in range(-radius, radius + 1):
-                for x in range(max(0, -dx), min(w, w - dx)):
-                    out[x] += src[x + dx]
+                lo = max(0, -dx)
+                n_x = min(w, w - dx) - lo
+                dst = out[lo:lo + n_x]
+                shifted = q[k, lo + dx:lo + dx + n_x]  # views, so the loop index is plain (it vectorises)
+                for x in range(n_x):
+                    dst[x] += shifted[x]
     s = np.empty((n_q, w))
     for y in range(h):
         for k in range(n_q):
