@@ -185,11 +185,12 @@ def noise_median(power, first, rank, out):
     for j0 in range(0, n, step):
         w = min(n, j0 + step) - j0
         for i in range(m):
-            row = power[first + 2 * i]
+            row = power[first + 2 * i, j0:j0 + w]  # a view: the copy's loop index stays plain
+            dst = block[i]
             for jj in range(w):
-                block[i, jj] = row[j0 + jj]
+                dst[jj] = row[jj]
             for jj in range(w, step):  # a short last block: copies of its first trace
-                block[i, jj] = row[j0]
+                dst[jj] = row[0]
         for jj in range(step):
             lo[jj] = big
             hi[jj] = 0
