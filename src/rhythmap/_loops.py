@@ -421,9 +421,9 @@ def unpack_fixed(packed, first, inverse, out, col0):
     for p in range(2):
         for b in range(out.shape[1]):
             src = packed[p, first + b]
-            dst = out[p, b]
+            dst = out[p, b, col0:col0 + q]  # a view: the loop index stays plain (it vectorises)
             for j in range(q):
-                dst[col0 + j] = np.float32(src[j]) * inverse[j]
+                dst[j] = np.float32(src[j]) * inverse[j]
 
 
 @numba.jit(**_JIT)
