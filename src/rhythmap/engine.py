@@ -308,6 +308,11 @@ class PaddedTile:
 
 
 # ------------------------------------------------------------------ kept spectra
+def _band_rows(tx: int, columns: int) -> int:
+    """Rows of a tile tx pixels wide that the maps kernel pools and transforms together (about ``columns`` traces)."""
+    return max(1, columns // tx)
+
+
 @dataclass(frozen=True)
 class KeptSpectra:
     """A temporary file holding, for every pixel, bins ``band`` of its detrended spectrum.
@@ -340,11 +345,21 @@ class KeptSpectra:
 
     @property
     def bytes_per_pixel(self) -> int:
-        return 2 * self.n_bins * 2 + 4
+        return self.pixel_bytes(self.n_bins)
+
+    @staticmethod
+    def pixel_bytes(n_bins: int) -> int:
+        """Bytes a pixel takes: its real and imaginary parts at 16 bits, and its float32 step size."""
+        return 2 * n_bins * 2 + 4
+
+    def _band_parts(self, raw: np.ndarray, q: int) -> tuple[np.ndarray, np.ndarray]:
+        """Views of one band's bytes: its (2, n_bins, q) 16-bit parts and its q step sizes."""
+        split = 2 * 2 * self.n_bins * q
+        return raw[:split].view(np.int16).reshape(2, self.n_bins, q), raw[split:split + 4 * q].view(np.float32)
 
     def band_rows(self, tx: int) -> int:
         """Rows of a tile tx pixels wide transformed (and kept) together."""
-        return max(1, self.band_columns // tx)
+        return _band_rows(tx, self.band_columns)
 
     def offset(self, y0: int, x0: int, ty: int) -> int:
         """Byte offset of the tile at (y0, x0) of height ty."""
@@ -355,9 +370,7 @@ class KeptSpectra:
         (through ``fd``, the file opened for writing, when given: a tile opens it once)."""
         q = block.shape[2]
         raw = np.empty(self.bytes_per_pixel * q, np.uint8)
-        split = 2 * 2 * self.n_bins * q  # the 16-bit parts, then the step sizes
-        _loops.pack_fixed(np.ascontiguousarray(block, np.float32), raw[:split].view(np.int16).reshape(block.shape),
-                          raw[split:].view(np.float32))
+        _loops.pack_fixed(np.ascontiguousarray(block, np.float32), *self._band_parts(raw, q))
         own = fd is None
         if own:
             fd = os.open(self.path, os.O_WRONLY)
@@ -391,10 +404,8 @@ class KeptSpectra:
         out = np.empty((2, i1 - i0, n_px), np.float32)
         for p0 in range(0, n_px, step):
             q = min(step, n_px - p0)
-            start = self.bytes_per_pixel * p0
-            split = start + 2 * 2 * self.n_bins * q  # the band's 16-bit parts, then its scales
-            packed = raw[start:split].view(np.int16).reshape(2, self.n_bins, q)
-            _loops.unpack_fixed(packed, i0, raw[split:split + 4 * q].view(np.float32), out, p0)
+            packed, steps = self._band_parts(raw[self.bytes_per_pixel * p0:], q)
+            _loops.unpack_fixed(packed, i0, steps, out, p0)
         return out
 
 
@@ -405,7 +416,7 @@ def _keep_spectra(shape, band, cleanup, client) -> tuple[KeptSpectra | None, str
     import tempfile
 
     _, y, x = shape
-    need = (2 * (band[1] - band[0]) * 2 + 4) * y * x  # KeptSpectra.bytes_per_pixel: int16 parts, a scale
+    need = KeptSpectra.pixel_bytes(band[1] - band[0]) * y * x
     if not hasattr(os, "pwrite"):
         return None, "this system has no positioned file writes"
     if client is not None:
@@ -522,8 +533,8 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
     maps = np.empty((len(PASS1_KEYS), ty, tx), np.float32)
     bins = None if gram_bin is None else _TileBins(t, ty, tx, y0, x0, gram_bin)
     kernel = spectral.SpectralKernel(plan, basis, keep_band=None if keep is None else keep.band)
-    band_rows = spectral.FFT_BLOCK_COLUMNS // tx if keep is None else keep.band_rows(tx)
-    band_rows = min(ty, max(1, band_rows))
+    # the kept spectra's file was laid out with the band width of its own making
+    band_rows = min(ty, _band_rows(tx, spectral.FFT_BLOCK_COLUMNS) if keep is None else keep.band_rows(tx))
     pooled = np.empty(t * band_rows * tx, np.float32)  # one buffer for every band
     kept_buf = None if keep is None else np.empty(2 * keep.n_bins * band_rows * tx, np.float32)
     with contextlib.ExitStack() as stack:
