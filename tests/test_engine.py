@@ -42,8 +42,10 @@ def test_same_numbers_for_any_chunking_and_tile_size(well):
         st = rhythmap.open_stack(da.from_array(well.frames, chunks=chunks), frame_interval_s=0.04)
         results.append(rhythmap.analyze(st, (20, 150), memory_budget_mb=budget))
     for r in results[1:]:
-        np.testing.assert_allclose(r.rate_bpm, results[0].rate_bpm, rtol=2e-5, equal_nan=True)
-        np.testing.assert_allclose(r.amplitude, results[0].amplitude, rtol=2e-5, equal_nan=True)
+        # the per-pixel maps are the same to the last bit (each trace's arithmetic is its own)
+        for key in ("rate_bpm", "amplitude", "periodicity"):
+            np.testing.assert_array_equal(getattr(r, key), getattr(results[0], key))
+        # the phase stage also uses the Gram bins, which tiles sum in their own order: rounding only
         # the phase stage (from the kept spectra) does not depend on the tiles either
         assert r.parameters["phase_source"].startswith("kept spectra")
         np.testing.assert_array_equal(np.isnan(r.phase_rad), np.isnan(results[0].phase_rad))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import scipy.fft
 import scipy.signal
 
 from rhythmap import spectral
@@ -184,3 +185,53 @@ def test_noise_median_is_numpys_partition_exactly(case):
         _loops.noise_median(power, first, rank, got)
         want = np.partition(np.ascontiguousarray(power[first::2][:m].T), rank, axis=1)[:, rank]
         np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("n_frames", [4, 6, 10, 16, 30, 128, 400, 600, 720, 1000, 1024, 1200, 2000])
+def test_compiled_rfft_equals_scipy_float64(rng, n_frames):
+    """The compiled mixed-radix rFFT along time (radices 2, 3, 4, 5) against scipy.fft.rfft in
+    float64 (reference library), within float32 rounding, for widths that leave a short last block
+    of traces; and the sizes it does not handle (odd T, other prime factors) go to scipy."""
+    from rhythmap import _loops
+
+    n = _loops.FFT_TRACE_BLOCK * 2 + 37
+    x = (rng.normal(0, 1, (n_frames, n)) + 50 * np.sin(np.arange(n_frames) / 3.0)[:, None]).astype(np.float32)
+    assert spectral.fft_tables(n_frames) is not None
+    got = spectral.rfft_time(x)
+    want = scipy.fft.rfft(x.astype(np.float64), axis=0)
+    assert got.dtype == np.complex64 and got.shape == want.shape
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-6 * np.abs(want).max())
+    assert got[0].imag.max() == 0.0  # the mean bin is real
+    # one trace's result does not depend on its neighbours or its place in a block
+    np.testing.assert_array_equal(spectral.rfft_time(np.ascontiguousarray(x[:, 5:9]))[:, 0], got[:, 5])
+    # an output array handed in is filled
+    out = np.empty(got.size + 10, np.complex64)
+    assert np.shares_memory(spectral.rfft_time(x, out), out)
+
+
+@pytest.mark.parametrize("n_frames", [600, 602])
+def test_trend_coefficients_do_not_depend_on_the_other_traces(rng, n_frames):
+    """The trend coefficients made on the way through the FFT (and by the loop used where scipy
+    does the FFT) equal basis @ x within float32 rounding, and a trace gets the very same numbers
+    in any block of traces: what keeps the maps identical for any tiling (BLAS's sgemm does not)."""
+    from rhythmap import _loops
+
+    x = (1000 + rng.normal(0, 30, (n_frames, 300))).astype(np.float32)
+    basis_t = np.ascontiguousarray(trend_basis(n_frames, DT, 0.25).T, np.float32)
+    coef = np.empty((basis_t.shape[0], 300), np.float32)
+    spectral.rfft_time(x, basis_t=basis_t, coef=coef)
+    np.testing.assert_allclose(coef, basis_t.astype(np.float64) @ x, rtol=0, atol=1e-5 * np.abs(coef).max())
+    for a, b in ((0, 5), (3, 200), (131, 300)):
+        part = np.empty((basis_t.shape[0], b - a), np.float32)
+        spectral.rfft_time(np.ascontiguousarray(x[:, a:b]), basis_t=basis_t, coef=part)
+        np.testing.assert_array_equal(part, coef[:, a:b])
+    loop = np.empty_like(coef)
+    _loops.trend_coefficients(x, basis_t, loop)
+    np.testing.assert_array_equal(loop, coef)
+
+
+@pytest.mark.parametrize("n_frames", [3, 401, 602, 14])
+def test_rfft_sizes_without_compiled_plan_use_scipy(rng, n_frames):
+    x = rng.normal(0, 1, (n_frames, 9)).astype(np.float32)
+    assert spectral.fft_tables(n_frames) is None
+    np.testing.assert_allclose(spectral.rfft_time(x), scipy.fft.rfft(x, axis=0), rtol=0, atol=1e-5)

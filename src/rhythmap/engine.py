@@ -733,8 +733,13 @@ def _run_tiles(tasks, on_tile: Callable[[], None], cancel: Callable[[], bool] | 
     # cores nearly halved the speed of a pass (measured).
     from threadpoolctl import threadpool_limits
 
+    # One tile thread per core, set explicitly: from any thread but the main one
+    # dask makes a pool of Python's default size, cores + 4 (6 on 2 cores),
+    # and the pass always runs in a thread of its own (_drain). Six tiles at
+    # once on two cores cost a quarter more time than two (measured).
     with threadpool_limits(limits=1, user_api="blas"):
-        return list(dask.compute(*tasks, scheduler="threads", callbacks=[_Ticks()._callback]))
+        return list(dask.compute(*tasks, scheduler="threads", num_workers=_parallelism()[0],
+                                 callbacks=[_Ticks()._callback]))
 
 
 # ------------------------------------------------------------------ public entry points

@@ -12,6 +12,8 @@ feeds it tiles, one band of rows at a time.
 
 from __future__ import annotations
 
+import functools
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -146,6 +148,74 @@ def plan_spectrum(n_frames: int, frame_interval_s: float, rate_range_bpm, *,
     return SpectralPlan(n_frames, dt, (k_lo, k_hi), trend_bins, float(false_alarm), threshold)
 
 
+@functools.lru_cache(maxsize=16)
+def fft_tables(n_frames: int):
+    """Radices and twiddle tables of :func:`rhythmap._loops.rfft_columns` for T = ``n_frames``,
+    or None when T is odd or T/2 has a prime factor above 5 (those go to scipy).
+
+    Each stage's twiddles exp(-2 pi i p k / n) are computed in float64 from
+    the exact integer p k mod n and rounded once to float32.
+
+    Examples
+    --------
+    >>> fft_tables(600)[0].tolist()
+    [4, 3, 5, 5]
+    >>> fft_tables(602) is None
+    True
+    """
+    if n_frames % 2 or n_frames < 4:
+        return None
+    half, left, radices = n_frames // 2, n_frames // 2, []
+    for r in (4, 2, 3, 5):
+        while left % r == 0:
+            radices.append(r)
+            left //= r
+    if left != 1:
+        return None
+    firsts, re, im, n = [], [], [], half
+    for r in radices:
+        m = n // r
+        pk = (np.arange(m)[:, None] * np.arange(r)[None, :]) % n
+        firsts.append(sum(a.size for a in re))
+        re.append(np.cos(2 * np.pi * pk / n).ravel())
+        im.append(-np.sin(2 * np.pi * pk / n).ravel())
+        n = m
+    k = np.arange(half + 1)
+    return (np.array(radices, np.int64), np.array(firsts, np.int64),
+            np.concatenate(re).astype(np.float32), np.concatenate(im).astype(np.float32),
+            np.cos(np.pi * k / half).astype(np.float32), (-np.sin(np.pi * k / half)).astype(np.float32))
+
+
+def rfft_time(x: np.ndarray, out=None, basis_t=None, coef=None) -> np.ndarray:
+    """rFFT along axis 0 of (T, n) float32 traces (C order): (T//2 + 1, n) complex64.
+
+    A compiled mixed-radix transform (:func:`rhythmap._loops.rfft_columns`)
+    where T allows it; otherwise scipy's. ``out``, if given, is a complex64
+    array of at least that many values for the compiled transform to fill
+    and return reshaped (scipy's returns a new array). With ``basis_t``
+    (K, T) float32, also fills ``coef`` (K, n) with ``basis_t @ x`` in an
+    order that does not depend on the other traces
+    (:func:`rhythmap._loops.trend_coefficients`).
+
+    Examples
+    --------
+    >>> x = np.random.default_rng(0).normal(size=(600, 5)).astype(np.float32)
+    >>> bool(np.allclose(rfft_time(x), scipy.fft.rfft(x, axis=0), atol=1e-4))
+    True
+    """
+    x = np.ascontiguousarray(x, np.float32)
+    if basis_t is None:
+        basis_t, coef = np.zeros((0, x.shape[0]), np.float32), np.zeros((0, x.shape[1]), np.float32)
+    tables = fft_tables(x.shape[0])
+    if tables is None:
+        _loops.trend_coefficients(x, basis_t, coef)
+        return scipy.fft.rfft(x, axis=0)
+    shape = (x.shape[0] // 2 + 1, x.shape[1])
+    spec = np.empty(shape, np.complex64) if out is None else out.reshape(-1)[:math.prod(shape)].reshape(shape)
+    _loops.rfft_columns(x, *tables, spec.view(np.float32), basis_t, coef)
+    return spec
+
+
 def hann_window(n: int) -> np.ndarray:
     """Periodic Hann window of length n, float32."""
     return (0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n)).astype(np.float32)
@@ -252,15 +322,27 @@ class SpectralKernel:
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
         self._power_scratch = np.empty(0, np.float32)
+        self._spec_scratch = np.empty(0, np.complex64)
         if keep_band is not None:  # the trend components' plain spectrum in the kept bins
             q_plain = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]]
             self.keep_re = np.ascontiguousarray(q_plain.real, np.float32)
             self.keep_im = np.ascontiguousarray(q_plain.imag, np.float32)
 
-    def _spectrum(self, traces):
-        """Plain rFFT along time of (T, n) traces and their trend coefficients."""
+    def _spectrum(self, traces, scratch=False):
+        """Plain rFFT along time of (T, n) traces and their trend coefficients.
+
+        With ``scratch``, the spectrum is written into the kernel's array of
+        the call before (valid until the next call).
+        """
         x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
-        return scipy.fft.rfft(x, axis=0), self.trend_basis_t @ x
+        out = None
+        if scratch:
+            size = (x.shape[0] // 2 + 1) * x.shape[1]
+            if self._spec_scratch.size < size:
+                self._spec_scratch = np.empty(size, np.complex64)
+            out = self._spec_scratch
+        coef = np.empty((self.trend_basis_t.shape[0], x.shape[1]), np.float32)
+        return rfft_time(x, out, self.trend_basis_t, coef), coef
 
     def power(self, traces):
         """Hann-windowed, detrended periodogram of (T, n) traces: ((F, n) float32, each trace's windowed sum).
@@ -291,7 +373,7 @@ class SpectralKernel:
         :func:`rhythmap.phase.band_lockin_weights`).
         """
         plan = self.plan
-        spec, coef = self._spectrum(traces)
+        spec, coef = self._spectrum(traces, scratch=True)
         if kept is not None:
             _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept)
         power, dc = self._power(spec, coef, scratch=True)
