@@ -122,51 +122,56 @@ def box_pool_rows_split(left, middle, right, radius, y_start, y_stop, out):
             _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
 
 
-@numba.jit(**_JIT)
-def windowed_power(spec, n_frames, coef, trend_re, trend_im, power, dc):
+@numba.jit(**_JIT_NOALIAS)
+def windowed_power(sr, si, w, n_frames, coef, trend_re, trend_im, power, dc, col0):
     """Hann-windowed, detrended periodogram of traces from their plain rFFT.
 
-    ``spec`` (F, n) complex64 is the rFFT along time (axis 0) of the traces
-    without a window. The periodic Hann window w(t) = 1/2 - cos(2 pi t / T) / 2
+    ``sr, si`` (F, >= w) hold the real and imaginary parts of the rFFT along
+    time (axis 0) of w traces without a window: columns ``col0 .. col0 + w - 1``
+    of the outputs. The periodic Hann window w(t) = 1/2 - cos(2 pi t / T) / 2
     is applied here in the frequency domain, where it is exactly the
     three-tap filter X_w[k] = X[k] / 2 - (X[k-1] + X[k+1]) / 4 (with
     X[-k] = conj(X[k]) and X[T-k] = conj(X[k]) past the ends), which saves a
     pass over the traces. Then the trend components' windowed spectrum,
     ``(trend_re + i trend_im) @ coef`` ((F_trend, K) @ (K, n)), is subtracted
-    from the lowest bins. Writes ``power`` (F, n) float32 and ``dc`` (n,),
-    the windowed sum of each trace before the trend was removed. Every loop
-    runs over the traces innermost (contiguous), so it vectorises.
+    from the lowest bins. Writes ``power[:, col0:col0 + w]`` of (F, n) float32
+    and ``dc[col0:col0 + w]``, the windowed sum of each trace before the
+    trend was removed. Every loop runs over the traces innermost
+    (contiguous), so it vectorises.
     """
-    n_bins, n = spec.shape
+    n_bins = power.shape[0]
     n_low = trend_re.shape[0]
     n_k = coef.shape[0]
-    re = np.empty(n, np.float32)
-    im = np.empty(n, np.float32)
+    re = np.empty(w, np.float32)
+    im = np.empty(w, np.float32)
+    quarter = np.float32(0.25)
     for k in range(n_bins):
-        here = spec[k]
+        here_r, here_i = sr[k], si[k]
         if k == 0:
-            left, left_sign = spec[1], np.float32(-1.0)
+            left_r, left_i, left_sign = sr[1], si[1], np.float32(-1.0)
         else:
-            left, left_sign = spec[k - 1], np.float32(1.0)
+            left_r, left_i, left_sign = sr[k - 1], si[k - 1], np.float32(1.0)
         if k + 1 < n_bins:
-            right, right_sign = spec[k + 1], np.float32(1.0)
+            right_r, right_i, right_sign = sr[k + 1], si[k + 1], np.float32(1.0)
         else:  # X[k + 1] = conj(X[T - k - 1])
-            right, right_sign = spec[n_frames - k - 1], np.float32(-1.0)
-        for j in range(n):
-            re[j] = np.float32(0.5) * here[j].real - np.float32(0.25) * (left[j].real + right[j].real)
-            im[j] = np.float32(0.5) * here[j].imag - np.float32(0.25) * (left_sign * left[j].imag
-                                                                         + right_sign * right[j].imag)
+            right_r, right_i, right_sign = sr[n_frames - k - 1], si[n_frames - k - 1], np.float32(-1.0)
+        for j in range(w):
+            re[j] = np.float32(0.5) * here_r[j] - quarter * (left_r[j] + right_r[j])
+            im[j] = np.float32(0.5) * here_i[j] - quarter * (left_sign * left_i[j] + right_sign * right_i[j])
         if k == 0:
-            for j in range(n):
-                dc[j] = re[j]
+            d = dc[col0:col0 + w]
+            for j in range(w):
+                d[j] = re[j]
         if k < n_low:
             for i in range(n_k):
                 a, b = trend_re[k, i], trend_im[k, i]
-                for j in range(n):
-                    re[j] -= a * coef[i, j]
-                    im[j] -= b * coef[i, j]
-        for j in range(n):
-            power[k, j] = re[j] * re[j] + im[j] * im[j]
+                cf = coef[i, col0:col0 + w]
+                for j in range(w):
+                    re[j] -= a * cf[j]
+                    im[j] -= b * cf[j]
+        out = power[k, col0:col0 + w]
+        for j in range(w):
+            out[j] = re[j] * re[j] + im[j] * im[j]
 
 
 #: Traces whose noise ordinates :func:`noise_median` holds at once: a block of
@@ -566,119 +571,183 @@ def trend_coefficients(x, basis_t, coef):
 
 
 @numba.jit(**_JIT_NOALIAS)
+def _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals, ar, ai, br, bi, acc, part, x0, coef):
+    """The FFT of traces ``c0 .. c0 + w - 1`` of ``x`` (T, n) and their trend coefficients.
+
+    Even and odd samples become the real and imaginary parts of T/2 complex
+    values z (in ``ar, ai``), transformed in one Stockham stage per radix
+    (:func:`_fft_stage`) between the pairs (ar, ai) and (br, bi). Returns
+    the pair that holds Z = FFT(z) in natural order. On the way writes
+    ``coef[:, c0:c0 + w]`` = ``basis_t`` @ x in the order of
+    :func:`trend_coefficients` (``totals`` holds each basis vector's sum).
+    """
+    half = x.shape[0] // 2
+    n_k = basis_t.shape[0]
+    steps = TREND_SUM_BLOCK // 2  # pairs of samples per run
+    first = x[0, c0:c0 + w]
+    for b in range(w):
+        x0[b] = first[b]
+    for k in range(n_k):
+        for b in range(w):
+            acc[k, b] = np.float32(0.0)
+    for i in range(half):
+        even = x[2 * i, c0:c0 + w]  # views: the loop index stays plain (it vectorises)
+        odd = x[2 * i + 1, c0:c0 + w]
+        for b in range(w):
+            ar[i, b] = even[b]
+            ai[i, b] = odd[b]
+        for k in range(n_k):
+            qe, qo = basis_t[k, 2 * i], basis_t[k, 2 * i + 1]
+            if i % steps == 0:
+                for b in range(w):
+                    part[k, b] = np.float32(0.0)
+            for b in range(w):
+                part[k, b] = part[k, b] + qe * (ar[i, b] - x0[b])
+                part[k, b] = part[k, b] + qo * (ai[i, b] - x0[b])
+            if i % steps == steps - 1 or i == half - 1:
+                for b in range(w):
+                    acc[k, b] = acc[k, b] + part[k, b]
+    for k in range(n_k):
+        dst = coef[k, c0:c0 + w]
+        for b in range(w):
+            dst[b] = acc[k, b] + x0[b] * totals[k]
+    xr, xi, yr, yi = ar, ai, br, bi
+    length = half
+    stride = 1
+    for st in range(radices.shape[0]):
+        r = radices[st]
+        _fft_stage(xr, xi, yr, yi, length, stride, r, tw_re, tw_im, tw_first[st], w)
+        length //= r
+        stride *= r
+        xr, xi, yr, yi = yr, yi, xr, xi
+    return xr, xi
+
+
+@numba.jit(**_JIT_NOALIAS)
+def _unpack_real(zr, zi, w, post_re, post_im, sr, si):
+    """The spectrum X[0 .. T/2] of the real traces from Z (T/2 rows), into ``sr, si`` (T/2 + 1 rows).
+
+    X[k] = E[k] + exp(-2 pi i k / T) O[k] with E[k] = (Z[k] + conj Z[T/2 - k]) / 2
+    and O[k] = (Z[k] - conj Z[T/2 - k]) / 2i (``post_re/im`` hold the exp(-2 pi i k / T)).
+    """
+    half = post_re.shape[0] - 1
+    one_half = np.float32(0.5)
+    for k in range(half + 1):
+        k1 = k % half
+        k2 = (half - k) % half
+        wr, wi = post_re[k], post_im[k]
+        for b in range(w):
+            er = one_half * (zr[k1, b] + zr[k2, b])
+            ei = one_half * (zi[k1, b] - zi[k2, b])
+            orr = one_half * (zi[k1, b] + zi[k2, b])
+            oi = one_half * (zr[k2, b] - zr[k1, b])
+            sr[k, b] = er + (wr * orr - wi * oi)
+            si[k, b] = ei + (wr * oi + wi * orr)
+
+
+@numba.jit(**_JIT)
+def _fft_scratch(t, n_k):
+    """Scratch of :func:`_rfft_block` for T = t and K = n_k: four (T/2 + 1, block) arrays, then
+    acc, part (K, block), x0 (block,)."""
+    width = FFT_TRACE_BLOCK
+    rows = t // 2 + 1
+    return (np.empty((rows, width), np.float32), np.empty((rows, width), np.float32),
+            np.empty((rows, width), np.float32), np.empty((rows, width), np.float32),
+            np.empty((n_k, width), np.float32), np.empty((n_k, width), np.float32),
+            np.empty(width, np.float32))
+
+
+@numba.jit(**_JIT)
+def _basis_totals(basis_t):
+    totals = np.empty(basis_t.shape[0], np.float32)
+    for k in range(basis_t.shape[0]):
+        totals[k] = np.float32(basis_t[k].astype(np.float64).sum())
+    return totals
+
+
+@numba.jit(**_JIT_NOALIAS)
 def rfft_columns(x, radices, tw_first, tw_re, tw_im, post_re, post_im, spec, basis_t, coef):
     """The rFFT along axis 0 of (T, n) float32 traces, T even, T/2 a product of the ``radices`` (2, 3, 4, 5).
 
     Writes ``spec`` (T/2 + 1, 2 n) float32, the (T/2 + 1, n) complex64
     spectrum seen as float pairs, and ``coef`` (K, n) = ``basis_t`` (K, T) @ x
     in the order of :func:`trend_coefficients`, while the samples pass by
-    (K may be 0). Per block of ``FFT_TRACE_BLOCK`` traces:
-    even and odd samples become the real and imaginary parts of T/2 complex
-    values z, transformed in one Stockham stage per radix
-    (:func:`_fft_stage`); X[k] = E[k] + exp(-2 pi i k / T) O[k] with
-    E[k] = (Z[k] + conj Z[T/2 - k]) / 2 and O[k] = (Z[k] - conj Z[T/2 - k]) / 2i
-    (``post_re/im`` hold the exp(-2 pi i k / T)). scipy's FFT runs along this axis
-    four traces at a time with 4-wide vectors; here every butterfly runs
-    over a whole block of traces, in the machine's widest vectors. Same
-    rounding as scipy's float32 transform (about 1e-7 of the largest bin);
-    the arithmetic of one trace never depends on its neighbours.
-    The tables come from :func:`rhythmap.spectral.fft_tables`.
+    (K may be 0). The traces go ``FFT_TRACE_BLOCK`` at a time through
+    :func:`_rfft_block` and :func:`_unpack_real`. scipy's FFT runs along
+    this axis four traces at a time with 4-wide vectors; here every
+    butterfly runs over a whole block of traces, in the machine's widest
+    vectors. Same rounding as scipy's float32 transform (about 1e-7 of the
+    largest bin); the arithmetic of one trace never depends on its
+    neighbours. The tables come from :func:`rhythmap.spectral.fft_tables`.
     """
     t, n = x.shape
-    half = t // 2
-    n_k = basis_t.shape[0]
-    width = FFT_TRACE_BLOCK
-    ar = np.empty((half, width), np.float32)
-    ai = np.empty((half, width), np.float32)
-    br = np.empty((half, width), np.float32)
-    bi = np.empty((half, width), np.float32)
-    acc = np.empty((n_k, width), np.float32)
-    part = np.empty((n_k, width), np.float32)
-    x0 = np.empty(width, np.float32)
-    totals = np.empty(n_k, np.float32)
-    for k in range(n_k):
-        totals[k] = np.float32(basis_t[k].astype(np.float64).sum())
-    steps = TREND_SUM_BLOCK // 2  # pairs of samples per run
-    one_half = np.float32(0.5)
-    for c0 in range(0, n, width):
-        w = min(width, n - c0)
-        first = x[0, c0:c0 + w]
-        for b in range(w):
-            x0[b] = first[b]
-        for k in range(n_k):
-            for b in range(w):
-                acc[k, b] = np.float32(0.0)
-        for i in range(half):
-            even = x[2 * i, c0:c0 + w]  # views: the loop index stays plain (it vectorises)
-            odd = x[2 * i + 1, c0:c0 + w]
-            for b in range(w):
-                ar[i, b] = even[b]
-                ai[i, b] = odd[b]
-            for k in range(n_k):
-                qe, qo = basis_t[k, 2 * i], basis_t[k, 2 * i + 1]
-                if i % steps == 0:
-                    for b in range(w):
-                        part[k, b] = np.float32(0.0)
-                for b in range(w):
-                    part[k, b] = part[k, b] + qe * (ar[i, b] - x0[b])
-                    part[k, b] = part[k, b] + qo * (ai[i, b] - x0[b])
-                if i % steps == steps - 1 or i == half - 1:
-                    for b in range(w):
-                        acc[k, b] = acc[k, b] + part[k, b]
-        for k in range(n_k):
-            for b in range(w):
-                acc[k, b] = acc[k, b] + x0[b] * totals[k]
-        for k in range(n_k):
-            dst = coef[k, c0:c0 + w]
-            for b in range(w):
-                dst[b] = acc[k, b]
-        xr, xi, yr, yi = ar, ai, br, bi
-        length = half
-        stride = 1
-        for st in range(radices.shape[0]):
-            r = radices[st]
-            _fft_stage(xr, xi, yr, yi, length, stride, r, tw_re, tw_im, tw_first[st], w)
-            length //= r
-            stride *= r
-            xr, xi, yr, yi = yr, yi, xr, xi
-        for k in range(half + 1):
-            k1 = k % half
-            k2 = (half - k) % half
-            wr, wi = post_re[k], post_im[k]
+    ar, ai, br, bi, acc, part, x0 = _fft_scratch(t, basis_t.shape[0])
+    totals = _basis_totals(basis_t)
+    for c0 in range(0, n, FFT_TRACE_BLOCK):
+        w = min(FFT_TRACE_BLOCK, n - c0)
+        zr, zi = _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals,
+                             ar, ai, br, bi, acc, part, x0, coef)
+        sr, si = (br, bi) if radices.shape[0] % 2 == 0 else (ar, ai)  # the pair not holding Z
+        _unpack_real(zr, zi, w, post_re, post_im, sr, si)
+        for k in range(t // 2 + 1):
             out = spec[k, 2 * c0:2 * (c0 + w)]
             for b in range(w):
-                er = one_half * (xr[k1, b] + xr[k2, b])
-                ei = one_half * (xi[k1, b] - xi[k2, b])
-                orr = one_half * (xi[k1, b] + xi[k2, b])
-                oi = one_half * (xr[k2, b] - xr[k1, b])
-                out[2 * b] = er + (wr * orr - wi * oi)
-                out[2 * b + 1] = ei + (wr * oi + wi * orr)
+                out[2 * b] = sr[k, b]
+                out[2 * b + 1] = si[k, b]
 
 
-@numba.jit(**_JIT)
-def kept_band(spec, first, coef, trend_re, trend_im, out):
+@numba.jit(**_JIT_NOALIAS)
+def spectrum_power(x, radices, tw_first, tw_re, tw_im, post_re, post_im, basis_t, coef, trend_re, trend_im,
+                   power, dc, keep_first, keep_re, keep_im, kept):
+    """:func:`rfft_columns`, :func:`windowed_power` and :func:`kept_band` in one pass per block of traces.
+
+    Each block's spectrum stays in the core's cache from the FFT to the
+    power (no (F, n) complex array goes out to memory and back). Writes
+    ``coef`` (K, n), ``power`` (F, n), ``dc`` (n,) and, when ``kept`` has
+    rows ((2, B, n), B > 0), bins ``keep_first ..`` of the detrended plain
+    spectrum; the same numbers as the three functions one after the other.
+    """
+    t, n = x.shape
+    ar, ai, br, bi, acc, part, x0 = _fft_scratch(t, basis_t.shape[0])
+    totals = _basis_totals(basis_t)
+    for c0 in range(0, n, FFT_TRACE_BLOCK):
+        w = min(FFT_TRACE_BLOCK, n - c0)
+        zr, zi = _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals,
+                             ar, ai, br, bi, acc, part, x0, coef)
+        sr, si = (br, bi) if radices.shape[0] % 2 == 0 else (ar, ai)  # the pair not holding Z
+        _unpack_real(zr, zi, w, post_re, post_im, sr, si)
+        if kept.shape[1] > 0:
+            kept_band(sr, si, w, keep_first, coef, keep_re, keep_im, kept, c0)
+        windowed_power(sr, si, w, t, coef, trend_re, trend_im, power, dc, c0)
+
+
+@numba.jit(**_JIT_NOALIAS)
+def kept_band(sr, si, w, first, coef, trend_re, trend_im, out, col0):
     """Bins ``first .. first + B - 1`` of the detrended traces' plain spectrum.
 
-    ``spec`` (F, n) complex64 is the rFFT of the traces, ``coef`` (K, n) their
-    trend coefficients and ``trend_re/im`` (B, K) the trend components' plain
-    spectrum in those bins. Writes ``out`` (2, B, n) float32: real parts, then
-    imaginary parts, of spec - trend @ coef (a fixed order per trace).
+    ``sr, si`` (F, >= w) hold the real and imaginary parts of the rFFT of w
+    traces (columns ``col0 .. col0 + w - 1`` of the outputs), ``coef``
+    (K, n) their trend coefficients and ``trend_re/im`` (B, K) the trend
+    components' plain spectrum in those bins. Writes ``out[:, :, col0:col0 + w]``
+    of (2, B, n) float32: real parts, then imaginary parts, of
+    spec - trend @ coef (a fixed order per trace).
     """
     n_out = out.shape[1]
-    n = spec.shape[1]
     n_k = coef.shape[0]
     for b in range(n_out):
-        row = spec[first + b]
-        re = out[0, b]
-        im = out[1, b]
-        for j in range(n):
-            re[j] = row[j].real
-            im[j] = row[j].imag
+        re = out[0, b, col0:col0 + w]  # views: the loop index stays plain (it vectorises)
+        im = out[1, b, col0:col0 + w]
+        row_r = sr[first + b]
+        row_i = si[first + b]
+        for j in range(w):
+            re[j] = row_r[j]
+            im[j] = row_i[j]
         for i in range(n_k):
             a, c = trend_re[b, i], trend_im[b, i]
-            for j in range(n):
-                re[j] -= a * coef[i, j]
-                im[j] -= c * coef[i, j]
+            cf = coef[i, col0:col0 + w]
+            for j in range(w):
+                re[j] -= a * cf[j]
+                im[j] -= c * cf[j]
 
 
 @numba.jit(**_JIT)
@@ -877,24 +946,25 @@ def warm_up() -> None:
     once at the start so that no analysis pays for it midway.
     """
     spec = np.zeros((5, 3), np.complex64)
-    spec[1] = 1.0
-    rfft_columns(np.ones((8, 3), np.float32), np.array([4]), np.array([0]), np.ones(4, np.float32),
-                 np.zeros(4, np.float32), np.ones(5, np.float32), np.zeros(5, np.float32),
-                 spec.view(np.float32), np.ones((1, 8), np.float32), np.empty((1, 3), np.float32))
-    trend_coefficients(np.ones((8, 3), np.float32), np.ones((1, 8), np.float32), np.empty((1, 3), np.float32))
-    spec[:] = 0
-    spec[1] = 1.0
+    basis_t, coef = np.ones((1, 8), np.float32), np.empty((1, 3), np.float32)
+    tables = (np.array([4]), np.array([0]), np.ones(4, np.float32), np.zeros(4, np.float32),
+              np.ones(5, np.float32), np.zeros(5, np.float32))
+    rfft_columns(np.ones((8, 3), np.float32), *tables, spec.view(np.float32), basis_t, coef)
+    trend_coefficients(np.ones((8, 3), np.float32), basis_t, coef)
     power = np.empty((5, 3), np.float32)
-    windowed_power(spec, 8, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32),
-                   np.zeros((2, 1), np.float32), power, np.empty(3, np.float32))
+    low = np.zeros((2, 1), np.float32)
+    spectrum_power(np.ones((8, 3), np.float32), *tables, basis_t, coef, low, low, power, np.empty(3, np.float32),
+                   1, low, low, np.empty((2, 2, 3), np.float32))
+    sr, si = np.zeros((5, 3), np.float32), np.zeros((5, 3), np.float32)
+    sr[1] = 1.0
+    windowed_power(sr, si, 3, 8, coef, low, low, power, np.empty(3, np.float32), 0)
+    kept_band(sr, si, 3, 1, coef, low, low, np.empty((2, 2, 3), np.float32), 0)
     noise_median(power, 1, 1, np.empty(3, np.float32))
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
     unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
     local_plane_gradient(np.ones((4, 4)), np.ones((4, 4), np.bool_), 1, 3, np.empty((4, 4)), np.empty((4, 4)))
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
-    kept_band(spec, 1, np.zeros((1, 3), np.float32), np.zeros((2, 1), np.float32), np.zeros((2, 1), np.float32),
-              np.empty((2, 2, 3), np.float32))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32))
     add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),

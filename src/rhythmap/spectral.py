@@ -322,27 +322,42 @@ class SpectralKernel:
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
         self._power_scratch = np.empty(0, np.float32)
-        self._spec_scratch = np.empty(0, np.complex64)
         if keep_band is not None:  # the trend components' plain spectrum in the kept bins
             q_plain = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]]
             self.keep_re = np.ascontiguousarray(q_plain.real, np.float32)
             self.keep_im = np.ascontiguousarray(q_plain.imag, np.float32)
 
-    def _spectrum(self, traces, scratch=False):
-        """Plain rFFT along time of (T, n) traces and their trend coefficients.
-
-        With ``scratch``, the spectrum is written into the kernel's array of
-        the call before (valid until the next call).
-        """
+    def _spectrum_power(self, traces, kept=None, scratch=False):
+        """Windowed, detrended power ((F, n) float32) and windowed sums ((n,)) of (T, n) traces;
+        with ``kept``, also the kept band (see :meth:`maps`)."""
         x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
-        out = None
-        if scratch:
-            size = (x.shape[0] // 2 + 1) * x.shape[1]
-            if self._spec_scratch.size < size:
-                self._spec_scratch = np.empty(size, np.complex64)
-            out = self._spec_scratch
-        coef = np.empty((self.trend_basis_t.shape[0], x.shape[1]), np.float32)
-        return rfft_time(x, out, self.trend_basis_t, coef), coef
+        t, n = x.shape
+        n_bins = t // 2 + 1
+        if scratch:  # the array of the call before, when it is large enough
+            if self._power_scratch.size < n_bins * n:
+                self._power_scratch = np.empty(n_bins * n, np.float32)
+            power = self._power_scratch[:n_bins * n].reshape(n_bins, n)
+        else:
+            power = np.empty((n_bins, n), np.float32)
+        dc = np.empty(n, np.float32)
+        coef = np.empty((self.trend_basis_t.shape[0], n), np.float32)
+        if kept is None:
+            keep_first, keep_re, keep_im = 0, self.trend_re[:0], self.trend_im[:0]
+            kept = np.empty((2, 0, n), np.float32)
+        else:
+            keep_first, keep_re, keep_im = self.keep_band[0], self.keep_re, self.keep_im
+        tables = fft_tables(t)
+        if tables is not None:
+            _loops.spectrum_power(x, *tables, self.trend_basis_t, coef, self.trend_re, self.trend_im,
+                                  power, dc, keep_first, keep_re, keep_im, kept)
+        else:  # scipy's FFT, then the same loops on its real and imaginary parts
+            _loops.trend_coefficients(x, self.trend_basis_t, coef)
+            spec = scipy.fft.rfft(x, axis=0)
+            sr, si = np.ascontiguousarray(spec.real, np.float32), np.ascontiguousarray(spec.imag, np.float32)
+            if kept.shape[1]:
+                _loops.kept_band(sr, si, n, keep_first, coef, keep_re, keep_im, kept, 0)
+            _loops.windowed_power(sr, si, n, t, coef, self.trend_re, self.trend_im, power, dc, 0)
+        return power, dc
 
     def power(self, traces):
         """Hann-windowed, detrended periodogram of (T, n) traces: ((F, n) float32, each trace's windowed sum).
@@ -351,18 +366,7 @@ class SpectralKernel:
         to the spectrum in one compiled loop (:func:`rhythmap._loops.windowed_power`),
         which equals windowing and detrending in time.
         """
-        return self._power(*self._spectrum(traces))
-
-    def _power(self, spec, coef, scratch=False):
-        if scratch:  # the array of the call before, when it is large enough
-            if self._power_scratch.size < spec.size:
-                self._power_scratch = np.empty(spec.size, np.float32)
-            power = self._power_scratch[:spec.size].reshape(spec.shape)
-        else:
-            power = np.empty(spec.shape, np.float32)
-        dc = np.empty(spec.shape[1], np.float32)
-        _loops.windowed_power(spec, self.plan.n_frames, coef, self.trend_re, self.trend_im, power, dc)
-        return power, dc
+        return self._spectrum_power(traces)
 
     def maps(self, traces, kept=None) -> np.ndarray:
         """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
@@ -373,10 +377,7 @@ class SpectralKernel:
         :func:`rhythmap.phase.band_lockin_weights`).
         """
         plan = self.plan
-        spec, coef = self._spectrum(traces, scratch=True)
-        if kept is not None:
-            _loops.kept_band(spec, self.keep_band[0], coef, self.keep_re, self.keep_im, kept)
-        power, dc = self._power(spec, coef, scratch=True)
+        power, dc = self._spectrum_power(traces, kept, scratch=True)
         n_bins, n = power.shape
         first = plan.trend_bins + 1
         # White-noise level: the median ordinate above the trend bins is ln 2
