@@ -182,7 +182,7 @@ def test_noise_median_is_numpys_partition_exactly(case):
     m = (n_bins - first + 1) // 2
     for rank in (m // 2, 0, m - 1):
         got = np.empty(n, np.float32)
-        _loops.noise_median(power, first, rank, got)
+        _loops.noise_median(power, first, rank, got, n)
         want = np.partition(np.ascontiguousarray(power[first::2][:m].T), rank, axis=1)[:, rank]
         np.testing.assert_array_equal(got, want)
 

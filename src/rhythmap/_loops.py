@@ -86,44 +86,55 @@ def box_pool_rows(block, radius, y_start, y_stop, out):
             _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
 
 
+@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
+def _pool_row(left, middle, right, radius, y, colsum, rowsum, out, row):
+    """Box-pooled row ``y`` of a block held as three column pieces, every frame: ``out[t, row, :]``.
+
+    Pools rows y .. y + 2r of the pieces (left strip, centre, right strip),
+    column sums first (top to bottom), then across (:func:`_sum_across`).
+    ``colsum`` holds X + 2r floats, ``rowsum`` X.
+    """
+    side = 2 * radius + 1
+    nx = middle.shape[2]
+    scale = np.float32(1.0 / (side * side))
+    col_left = colsum[:radius]
+    col_mid = colsum[radius:radius + nx]
+    col_right = colsum[radius + nx:]
+    for t in range(middle.shape[0]):
+        for c in range(radius):
+            col_left[c] = np.float32(left[t, y, c])
+        for c in range(nx):
+            col_mid[c] = np.float32(middle[t, y, c])
+        for c in range(radius):
+            col_right[c] = np.float32(right[t, y, c])
+        for dy in range(1, side):
+            for c in range(radius):
+                col_left[c] += np.float32(left[t, y + dy, c])
+            for c in range(nx):
+                col_mid[c] += np.float32(middle[t, y + dy, c])
+            for c in range(radius):
+                col_right[c] += np.float32(right[t, y + dy, c])
+        _sum_across(colsum, side, scale, rowsum, out, t, row)
+
+
 @numba.jit(**_JIT)
 def box_pool_rows_split(left, middle, right, radius, y_start, y_stop, out):
     """:func:`box_pool_rows` of a block held as three column pieces (left strip, centre, right strip).
 
     ``middle`` is (T, Y, X), the strips (T, Y, r); output rows y_start:y_stop
     pool rows y .. y + 2r of the pieces, (T, y_stop - y_start, X) float32, in
-    the same arithmetic order as :func:`box_pool_rows` on the assembled block.
-    The engine uses it for the rows of a tile away from its top and bottom
-    edges, which then need no copy.
+    the same arithmetic order as :func:`box_pool_rows` on the assembled block
+    (one row at a time, :func:`_pool_row`).
     """
-    side = 2 * radius + 1
     nx = middle.shape[2]
-    scale = np.float32(1.0 / (side * side))
     colsum = np.empty(nx + 2 * radius, np.float32)
-    col_left = colsum[:radius]
-    col_mid = colsum[radius:radius + nx]
-    col_right = colsum[radius + nx:]
     rowsum = np.empty(nx, np.float32)
-    for t in range(middle.shape[0]):
-        for y in range(y_start, y_stop):
-            for c in range(radius):
-                col_left[c] = np.float32(left[t, y, c])
-            for c in range(nx):
-                col_mid[c] = np.float32(middle[t, y, c])
-            for c in range(radius):
-                col_right[c] = np.float32(right[t, y, c])
-            for dy in range(1, side):
-                for c in range(radius):
-                    col_left[c] += np.float32(left[t, y + dy, c])
-                for c in range(nx):
-                    col_mid[c] += np.float32(middle[t, y + dy, c])
-                for c in range(radius):
-                    col_right[c] += np.float32(right[t, y + dy, c])
-            _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
+    for y in range(y_start, y_stop):
+        _pool_row(left, middle, right, radius, y, colsum, rowsum, out, y - y_start)
 
 
 @numba.jit(**_JIT_NOALIAS)
-def windowed_power(sr, si, w, n_frames, coef, trend_re, trend_im, power, dc, col0):
+def windowed_power(sr, si, w, n_frames, coef, coef_col0, trend_re, trend_im, power, dc, col0):
     """Hann-windowed, detrended periodogram of traces from their plain rFFT.
 
     ``sr, si`` (F, >= w) hold the real and imaginary parts of the rFFT along
@@ -134,7 +145,8 @@ def windowed_power(sr, si, w, n_frames, coef, trend_re, trend_im, power, dc, col
     X[-k] = conj(X[k]) and X[T-k] = conj(X[k]) past the ends), which saves a
     pass over the traces. Then the trend components' windowed spectrum,
     ``(trend_re + i trend_im) @ coef`` ((F_trend, K) @ (K, n)), is subtracted
-    from the lowest bins. Writes ``power[:, col0:col0 + w]`` of (F, n) float32
+    from the lowest bins (the traces' coefficients are columns ``coef_col0 ..``
+    of ``coef``). Writes ``power[:, col0:col0 + w]`` of (F, n) float32
     and ``dc[col0:col0 + w]``, the windowed sum of each trace before the
     trend was removed. Every loop runs over the traces innermost
     (contiguous), so it vectorises.
@@ -165,7 +177,7 @@ def windowed_power(sr, si, w, n_frames, coef, trend_re, trend_im, power, dc, col
         if k < n_low:
             for i in range(n_k):
                 a, b = trend_re[k, i], trend_im[k, i]
-                cf = coef[i, col0:col0 + w]
+                cf = coef[i, coef_col0:coef_col0 + w]
                 for j in range(w):
                     re[j] -= a * cf[j]
                     im[j] -= b * cf[j]
@@ -180,9 +192,10 @@ MEDIAN_BLOCK = 64
 
 
 @numba.jit(**_JIT)
-def noise_median(power, first, rank, out):
+def noise_median(power, first, rank, out, n_cols):
     """``out[j]`` = the ``rank``-th smallest (from 0) of trace j's noise ordinates
-    ``power[first + 2 i, j]``, i = 0, 1, ...: exactly the value numpy's partition puts there.
+    ``power[first + 2 i, j]``, i = 0, 1, ...: exactly the value numpy's partition puts there,
+    for the first ``n_cols`` columns of ``power``.
 
     Non-negative float32 numbers order as their bit patterns read as int32,
     so the value is found by bisection on those integers, for a block of
@@ -195,7 +208,8 @@ def noise_median(power, first, rank, out):
     above lo, is the answer. ``power`` holds squared magnitudes:
     non-negative and finite.
     """
-    n_bins, n = power.shape
+    n_bins = power.shape[0]
+    n = n_cols
     m = (n_bins - first + 1) // 2
     step = MEDIAN_BLOCK
     block = np.empty((m, step), np.float32)
@@ -264,17 +278,19 @@ def noise_median(power, first, rank, out):
 
 @numba.jit(**_JIT)
 def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum,
-                   n_harmonics, out):
+                   n_harmonics, out, n_cols, col0):
     """Per-trace peak search, refinement and periodicity on a periodogram.
 
-    ``power`` is (F, n) float32, one column per trace, trend already removed;
-    ``noise_median`` (n,) the median of its noise ordinates; ``dc`` (n,) each
-    trace's windowed sum before the trend was removed. ``out`` is (8, n)
-    float32, filled in the order rate_bpm, period_s, amplitude, periodicity,
+    ``power`` is (F, >= n) float32, one column per trace, trend already
+    removed, of which the first n = ``n_cols`` are used; ``noise_median`` (n,)
+    the median of its noise ordinates; ``dc`` (n,) each trace's windowed sum
+    before the trend was removed. Writes ``out[:, col0:col0 + n]`` of
+    (8, N) float32, in the order rate_bpm, period_s, amplitude, periodicity,
     peak_score, detected, constant, mean (see
     :func:`rhythmap.spectral.spectral_maps` for the method).
     """
-    n_bins, n = power.shape
+    n_bins = power.shape[0]
+    n = n_cols
     ln2 = math.log(2.0)
     tiny = np.finfo(np.float32).tiny
     # sums and band maxima with the traces innermost (vectorised), then each trace on its own
@@ -339,17 +355,17 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
 
         constant = total[j] <= 1e-12 * dc[j] * dc[j] + 1e-30  # nothing but rounding beside the mean
         detected = score > threshold and not constant
-        out[0, j] = freq_hz * 60.0 if detected else np.nan
-        out[1, j] = 1.0 / freq_hz if detected else np.nan
-        out[2, j] = amplitude if detected else np.nan
+        out[0, col0 + j] = freq_hz * 60.0 if detected else np.nan
+        out[1, col0 + j] = 1.0 / freq_hz if detected else np.nan
+        out[2, col0 + j] = amplitude if detected else np.nan
         if constant:  # its spectrum is rounding noise: no peak, no harmonics
             score = 0.0
             periodicity = 0.0
-        out[3, j] = min(max(periodicity, 0.0), 1.0)
-        out[4, j] = score
-        out[5, j] = 1.0 if detected else 0.0
-        out[6, j] = 1.0 if constant else 0.0
-        out[7, j] = dc[j] / window_sum
+        out[3, col0 + j] = min(max(periodicity, 0.0), 1.0)
+        out[4, col0 + j] = score
+        out[5, col0 + j] = 1.0 if detected else 0.0
+        out[6, col0 + j] = 1.0 if constant else 0.0
+        out[7, col0 + j] = dc[j] / window_sum
 
 
 @numba.jit(**_JIT)
@@ -697,28 +713,57 @@ def rfft_columns(x, radices, tw_first, tw_re, tw_im, post_re, post_im, spec, bas
 
 
 @numba.jit(**_JIT_NOALIAS)
-def spectrum_power(x, radices, tw_first, tw_re, tw_im, post_re, post_im, basis_t, coef, trend_re, trend_im,
-                   power, dc, keep_first, keep_re, keep_im, kept):
-    """:func:`rfft_columns`, :func:`windowed_power` and :func:`kept_band` in one pass per block of traces.
+def band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, basis_t, trend_re, trend_im,
+              keep, kept, peak, out):
+    """The spectral maps of a band of pooled rows, each block of traces from pooling to peak in cache.
 
-    Each block's spectrum stays in the core's cache from the FFT to the
-    power (no (F, n) complex array goes out to memory and back). Writes
-    ``coef`` (K, n), ``power`` (F, n), ``dc`` (n,) and, when ``kept`` has
-    rows ((2, B, n), B > 0), bins ``keep_first ..`` of the detrended plain
-    spectrum; the same numbers as the three functions one after the other.
+    Pools output rows ``y_start .. y_stop - 1`` of a block held as three
+    column pieces (:func:`_pool_row`) into ``pooled`` ((T, rows, X) float32,
+    kept for the caller), only as far as the next ``FFT_TRACE_BLOCK`` traces
+    need; then per block: FFT and trend coefficients (:func:`_rfft_block`),
+    spectrum (:func:`_unpack_real`), kept band (:func:`kept_band`, when
+    ``kept`` (2, B, n) has rows), windowed power (:func:`windowed_power`),
+    noise median (:func:`noise_median`) and peaks (:func:`spectral_block`)
+    into ``out`` (8, rows * X). A block's power never leaves the core's
+    cache. ``tables`` is :func:`rhythmap.spectral.fft_tables`' tuple,
+    ``keep`` = (first bin, trend re, trend im) of the kept band and ``peak``
+    = (first noise ordinate, median rank, k_lo, k_hi, trend bins,
+    threshold, bin width in Hz, window sum, harmonics). The numbers are
+    those of the separate functions run one after the other.
     """
-    t, n = x.shape
-    ar, ai, br, bi, acc, part, x0 = _fft_scratch(t, basis_t.shape[0])
+    radices, tw_first, tw_re, tw_im, post_re, post_im = tables
+    keep_first, keep_re, keep_im = keep
+    first, rank, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum, n_harmonics = peak
+    t = middle.shape[0]
+    nx = middle.shape[2]
+    n = (y_stop - y_start) * nx
+    x = pooled.reshape((t, n))
+    n_k = basis_t.shape[0]
+    ar, ai, br, bi, acc, part, x0 = _fft_scratch(t, n_k)
     totals = _basis_totals(basis_t)
-    for c0 in range(0, n, FFT_TRACE_BLOCK):
-        w = min(FFT_TRACE_BLOCK, n - c0)
+    coef = np.empty((n_k, n), np.float32)
+    width = FFT_TRACE_BLOCK
+    power = np.empty((t // 2 + 1, width), np.float32)
+    dc = np.empty(width, np.float32)
+    median = np.empty(width, np.float32)
+    colsum = np.empty(nx + 2 * radius, np.float32)
+    rowsum = np.empty(nx, np.float32)
+    done = 0  # rows pooled so far
+    for c0 in range(0, n, width):
+        w = min(width, n - c0)
+        while done * nx < c0 + w:
+            _pool_row(left, middle, right, radius, y_start + done, colsum, rowsum, pooled, done)
+            done += 1
         zr, zi = _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals,
                              ar, ai, br, bi, acc, part, x0, coef)
         sr, si = (br, bi) if radices.shape[0] % 2 == 0 else (ar, ai)  # the pair not holding Z
         _unpack_real(zr, zi, w, post_re, post_im, sr, si)
         if kept.shape[1] > 0:
             kept_band(sr, si, w, keep_first, coef, keep_re, keep_im, kept, c0)
-        windowed_power(sr, si, w, t, coef, trend_re, trend_im, power, dc, c0)
+        windowed_power(sr, si, w, t, coef, c0, trend_re, trend_im, power, dc, 0)
+        noise_median(power, first, rank, median, w)
+        spectral_block(power, median, dc, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum, n_harmonics,
+                       out, w, c0)
 
 
 @numba.jit(**_JIT_NOALIAS)
@@ -953,23 +998,27 @@ def warm_up() -> None:
     trend_coefficients(np.ones((8, 3), np.float32), basis_t, coef)
     power = np.empty((5, 3), np.float32)
     low = np.zeros((2, 1), np.float32)
-    spectrum_power(np.ones((8, 3), np.float32), *tables, basis_t, coef, low, low, power, np.empty(3, np.float32),
-                   1, low, low, np.empty((2, 2, 3), np.float32))
     sr, si = np.zeros((5, 3), np.float32), np.zeros((5, 3), np.float32)
     sr[1] = 1.0
-    windowed_power(sr, si, 3, 8, coef, low, low, power, np.empty(3, np.float32), 0)
+    windowed_power(sr, si, 3, 8, coef, 0, low, low, power, np.empty(3, np.float32), 0)
     kept_band(sr, si, 3, 1, coef, low, low, np.empty((2, 2, 3), np.float32), 0)
-    noise_median(power, 1, 1, np.empty(3, np.float32))
+    noise_median(power, 1, 1, np.empty(3, np.float32), 3)
     segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
     unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
     local_plane_gradient(np.ones((4, 4)), np.ones((4, 4), np.bool_), 1, 3, np.empty((4, 4)), np.empty((4, 4)))
     rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
-                   np.empty((8, 3), np.float32))
+                   np.empty((8, 3), np.float32), 3, 0)
     add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),
                      np.array([0, 0, 1]), 2, np.zeros((2, 2), np.float32))
-    for dtype in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
+    peak = (1, 1, 1, 2, 0, 1.0, 1.0, 4.0, 2)
+    # The stack's common number types; the others (and the pooling loops below for them)
+    # compile on first use, about 5 s each, once per install.
+    for dtype in (np.uint16, np.float32):
+        band_maps(np.zeros((8, 4, 1), dtype), np.zeros((8, 4, 2), dtype), np.zeros((8, 4, 1), dtype), 1, 0, 2,
+                  np.empty((8, 2, 2), np.float32), tables, basis_t, low, low, (1, low, low),
+                  np.empty((2, 2, 4), np.float32), peak, np.empty((8, 4), np.float32))
         box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
         box_pool_rows_split(np.zeros((2, 4, 1), dtype), np.zeros((2, 4, 2), dtype), np.zeros((2, 4, 1), dtype), 1,
                             0, 2, np.empty((2, 2, 2), np.float32))

@@ -231,15 +231,22 @@ def _strip(block, rows, cols):
 class PaddedTile:
     """A tile with its halo, held as the 3 x 3 pieces of :func:`_pass_tasks` (or one padded array).
 
-    :meth:`pooled_rows` pools a band of output rows: inside the tile straight
-    from the middle row of pieces (left strip, tile, right strip); for the
-    bands that reach the top or bottom strip, from the padded rows copied into
-    a small buffer (:meth:`rows`). Both give exactly the numbers of pooling
-    one padded array.
+    :meth:`band_pieces` gives the three column pieces (left strip, tile,
+    right strip) that a band of output rows is pooled from: inside the tile
+    the middle row of pieces where it lies; for the bands that reach the top
+    or bottom strip, those rows copied into three small buffers. Pooling
+    them gives exactly the numbers of pooling one padded array.
     """
 
     def __init__(self, pieces, halo: int):
         self.halo = halo
+        if halo == 0 and not isinstance(pieces, (tuple, list)):  # no halo: the tile alone, strips of width 0
+            tile = np.ascontiguousarray(pieces)
+            t, ty, tx = tile.shape
+            edge = np.empty((t, 0, 0), tile.dtype)
+            side = np.empty((t, ty, 0), tile.dtype)
+            pieces = ((edge, np.empty((t, 0, tx), tile.dtype), edge), (side, tile, side),
+                      (edge, np.empty((t, 0, tx), tile.dtype), edge))
         if isinstance(pieces, (tuple, list)):
             center = np.asarray(pieces[1][1])
             # one array type for the compiled loops: C order, the tile's dtype (strips are small)
@@ -253,7 +260,7 @@ class PaddedTile:
             self.padded = np.asarray(pieces)
             self.shape = self.padded.shape
             self.dtype = self.padded.dtype
-        self._buf = None
+        self._bufs = None
 
     def arrays(self):
         """Every array holding the tile's values (for checks over all of them)."""
@@ -261,50 +268,38 @@ class PaddedTile:
             return [self.padded]
         return [p for row in self.grid for p in row]
 
-    def pooled_rows(self, r0: int, r1: int, out=None) -> np.ndarray:
-        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces.
-
-        ``out``, if given, is a float32 array of at least that many values,
-        filled and returned reshaped (the engine reuses one for all bands of a
-        tile: a fresh megabyte array per band costs its page faults again).
-        """
+    def band_pieces(self, r0: int, r1: int):
+        """(left, middle, right, y_start): C-order column pieces whose rows y_start + i .. y_start + i + 2 halo
+        are padded rows r0 + i .. r0 + i + 2 halo, for the output rows r0 .. r1 - 1 (i < r1 - r0)."""
         h = self.halo
-        t, _, width = self.shape
-        ty = self.shape[1] - 2 * h
-        shape = (t, r1 - r0, width - 2 * h)
-        pooled = np.empty(shape, np.float32) if out is None else out.reshape(-1)[:math.prod(shape)].reshape(shape)
-        if self.grid is None:
-            preprocess.box_pool_rows(self.padded, h, r0, r1, out=pooled)
-        elif r0 >= h and r1 + h <= ty:  # rows inside the tile: read the middle pieces where they lie
+        t, hy, width = self.shape
+        ty = hy - 2 * h
+        if self.grid is not None and r0 >= h and r1 + h <= ty:  # inside the tile: the pieces where they lie
             left, middle, right = self.grid[1]
-            _loops.box_pool_rows_split(left, middle, right, h, r0 - h, r1 - h, pooled)
-        else:  # rows reaching the top or bottom strip: copy them into one small buffer first
-            preprocess.box_pool_rows(self.rows(r0, r1), h, 0, r1 - r0, out=pooled)
-        return pooled.reshape(t, (r1 - r0) * (width - 2 * h))
-
-    def rows(self, r0: int, r1: int) -> np.ndarray:
-        """(T, r1 - r0 + 2 halo, tx + 2 halo): padded rows r0 .. r1 + 2 halo - 1."""
-        h = self.halo
-        if self.grid is None:
-            return self.padded[:, r0:r1 + 2 * h]
-        t, _, width = self.shape
+            return left, middle, right, r0 - h
         n = r1 - r0 + 2 * h
-        if self._buf is None or self._buf.shape[1] != n:
-            self._buf = np.empty((t, n, width), self.dtype)
-        out = self._buf
-        ty = self.shape[1] - 2 * h
+        if self._bufs is None or self._bufs[1].shape[1] != n:
+            self._bufs = tuple(np.empty((t, n, w), self.dtype) for w in (h, width - 2 * h, h))
+        parts = self._bufs
+        if self.grid is None:
+            for part, (c0, c1) in zip(parts, ((0, h), (h, width - h), (width - h, width))):
+                part[...] = self.padded[:, r0:r0 + n, c0:c1]
+            return parts + (0,)
         # padded row p comes from the top strip (p < h), the tile (h <= p < h + ty) or the bottom strip
-        for band, lo, hi in ((0, 0, h), (1, h, h + ty), (2, h + ty, ty + 2 * h)):
+        for band, lo, hi in ((0, 0, h), (1, h, h + ty), (2, h + ty, hy)):
             a, b = max(r0, lo), min(r0 + n, hi)
-            if a >= b:
-                continue
-            left, mid, right = self.grid[band]
-            dst = slice(a - r0, b - r0)
-            src = slice(a - lo, b - lo)
-            out[:, dst, :h] = left[:, src]
-            out[:, dst, h:width - h] = mid[:, src]
-            out[:, dst, width - h:] = right[:, src]
-        return out
+            if a < b:
+                for part, piece in zip(parts, self.grid[band]):
+                    part[:, a - r0:b - r0] = piece[:, a - lo:b - lo]
+        return parts + (0,)
+
+    def pooled_rows(self, r0: int, r1: int) -> np.ndarray:
+        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces."""
+        left, middle, right, y = self.band_pieces(r0, r1)
+        t = self.shape[0]
+        out = np.empty((t, r1 - r0, middle.shape[2]), np.float32)
+        _loops.box_pool_rows_split(left, middle, right, self.halo, y, y + r1 - r0, out)
+        return out.reshape(t, -1)
 
 
 # ------------------------------------------------------------------ kept spectra
@@ -543,9 +538,11 @@ def maps_tile_kernel(block, y0, x0, *, halo, plan, basis, gram_bin, keep=None, k
             stack.callback(os.close, fd)
         for r0 in range(0, ty, band_rows):
             r1 = min(ty, r0 + band_rows)
-            traces = tile.pooled_rows(r0, r1, out=pooled)
+            left, middle, right, y = tile.band_pieces(r0, r1)
+            band = pooled[:t * (r1 - r0) * tx].reshape(t, r1 - r0, tx)
             kept = None if keep is None else kept_buf[:2 * keep.n_bins * (r1 - r0) * tx].reshape(2, keep.n_bins, -1)
-            out = kernel.maps(traces, kept)
+            out = kernel.pooled_maps(left, middle, right, halo, y, y + r1 - r0, band, kept)
+            traces = band.reshape(t, -1)
             if kept is not None:  # written now, while the band's block is still in cache
                 keep.write(keep_offset + keep.bytes_per_pixel * r0 * tx, kept, fd)
             maps[:, r0:r1] = out.reshape(len(PASS1_KEYS), r1 - r0, tx)

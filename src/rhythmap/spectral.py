@@ -291,12 +291,8 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
 class SpectralKernel:
     """:func:`spectral_maps` on one block of traces, with the trend spectrum made once.
 
-    The engine pools each band of a tile into a (T, n) block and calls
-    :meth:`maps`; the steps after the FFT run in compiled loops
-    (:mod:`rhythmap._loops`). The kernel keeps its power array from one call
-    to the next (a fresh megabyte array costs its page faults again at every
-    band), so one kernel must not be used by two threads at once; the
-    engine makes one per tile.
+    The engine hands it each band of a tile's rows (:meth:`pooled_maps`),
+    which one compiled call pools and analyses (:mod:`rhythmap._loops`).
 
     Examples
     --------
@@ -321,42 +317,25 @@ class SpectralKernel:
         self.trend_basis_t = np.ascontiguousarray(q.T)
         self.trend_re = np.ascontiguousarray(q_spec.real, np.float32)
         self.trend_im = np.ascontiguousarray(q_spec.imag, np.float32)
-        self._power_scratch = np.empty(0, np.float32)
         if keep_band is not None:  # the trend components' plain spectrum in the kept bins
             q_plain = scipy.fft.rfft(q, axis=0)[keep_band[0]:keep_band[1]]
             self.keep_re = np.ascontiguousarray(q_plain.real, np.float32)
             self.keep_im = np.ascontiguousarray(q_plain.imag, np.float32)
 
-    def _spectrum_power(self, traces, kept=None, scratch=False):
+    def _spectrum_power(self, traces, kept=None):
         """Windowed, detrended power ((F, n) float32) and windowed sums ((n,)) of (T, n) traces;
-        with ``kept``, also the kept band (see :meth:`maps`)."""
+        with ``kept``, also the kept band (see :meth:`maps`). A step at a time over all traces
+        (:meth:`pooled_maps` does the same per block of traces)."""
         x = np.ascontiguousarray(traces, np.float32)  # a strided column block makes the FFT 2x slower
         t, n = x.shape
-        n_bins = t // 2 + 1
-        if scratch:  # the array of the call before, when it is large enough
-            if self._power_scratch.size < n_bins * n:
-                self._power_scratch = np.empty(n_bins * n, np.float32)
-            power = self._power_scratch[:n_bins * n].reshape(n_bins, n)
-        else:
-            power = np.empty((n_bins, n), np.float32)
+        power = np.empty((t // 2 + 1, n), np.float32)
         dc = np.empty(n, np.float32)
         coef = np.empty((self.trend_basis_t.shape[0], n), np.float32)
-        if kept is None:
-            keep_first, keep_re, keep_im = 0, self.trend_re[:0], self.trend_im[:0]
-            kept = np.empty((2, 0, n), np.float32)
-        else:
-            keep_first, keep_re, keep_im = self.keep_band[0], self.keep_re, self.keep_im
-        tables = fft_tables(t)
-        if tables is not None:
-            _loops.spectrum_power(x, *tables, self.trend_basis_t, coef, self.trend_re, self.trend_im,
-                                  power, dc, keep_first, keep_re, keep_im, kept)
-        else:  # scipy's FFT, then the same loops on its real and imaginary parts
-            _loops.trend_coefficients(x, self.trend_basis_t, coef)
-            spec = scipy.fft.rfft(x, axis=0)
-            sr, si = np.ascontiguousarray(spec.real, np.float32), np.ascontiguousarray(spec.imag, np.float32)
-            if kept.shape[1]:
-                _loops.kept_band(sr, si, n, keep_first, coef, keep_re, keep_im, kept, 0)
-            _loops.windowed_power(sr, si, n, t, coef, self.trend_re, self.trend_im, power, dc, 0)
+        spec = rfft_time(x, basis_t=self.trend_basis_t, coef=coef)
+        sr, si = np.ascontiguousarray(spec.real, np.float32), np.ascontiguousarray(spec.imag, np.float32)
+        if kept is not None:
+            _loops.kept_band(sr, si, n, self.keep_band[0], coef, self.keep_re, self.keep_im, kept, 0)
+        _loops.windowed_power(sr, si, n, t, coef, 0, self.trend_re, self.trend_im, power, dc, 0)
         return power, dc
 
     def power(self, traces):
@@ -369,26 +348,59 @@ class SpectralKernel:
         return self._spectrum_power(traces)
 
     def maps(self, traces, kept=None) -> np.ndarray:
-        """The maps of (T, n) float32 traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
+        """The maps of (T, n) traces: an (len(MAP_KEYS), n) float32 array, rows in MAP_KEYS order.
 
         With ``kept`` ((2, b - a, n) float32, C order) and the kernel's
         ``keep_band`` (a, b), also writes the real and imaginary parts of the
         detrended traces' plain spectrum in bins a..b-1 (for the lock-in, see
         :func:`rhythmap.phase.band_lockin_weights`).
         """
+        x = np.asarray(traces)
+        if x.dtype not in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
+            x = x.astype(np.float32)
+        t, n = x.shape
+        middle = np.ascontiguousarray(x).reshape(t, 1, n)
+        empty = np.empty((t, 1, 0), middle.dtype)
+        return self.pooled_maps(empty, middle, empty, 0, 0, 1, np.empty((t, 1, n), np.float32), kept)
+
+    def pooled_maps(self, left, middle, right, radius, y_start, y_stop, pooled, kept=None) -> np.ndarray:
+        """The maps of box-pooled rows y_start .. y_stop - 1 of a block held as three column pieces.
+
+        ``left``, ``middle``, ``right`` (T, Y, r), (T, Y, X), (T, Y, r), C
+        order, one number type: output row y pools rows y .. y + 2r of the
+        pieces (:func:`rhythmap.preprocess.box_pool_rows`). The pooled traces
+        are written to ``pooled`` ((T, rows, X) float32) for the caller. Returns
+        (len(MAP_KEYS), rows * X) float32; ``kept`` as in :meth:`maps`. One
+        compiled call (:func:`rhythmap._loops.band_maps`) takes each block of
+        traces from pooling to peak search while it is in cache.
+        """
         plan = self.plan
-        power, dc = self._spectrum_power(traces, kept, scratch=True)
-        n_bins, n = power.shape
+        t = middle.shape[0]
+        n = (y_stop - y_start) * middle.shape[2]
         first = plan.trend_bins + 1
         # White-noise level: the median ordinate above the trend bins is ln 2
         # times the mean of an exponential distribution, and hardly moved by a
         # few peaks. Every other ordinate: neighbouring Hann bins are correlated.
-        noise_median = np.empty(n, np.float32)
-        _loops.noise_median(power, first, ((n_bins - first + 1) // 2) // 2, noise_median)
+        rank = ((plan.n_bins - first + 1) // 2) // 2
+        peak = (first, rank, plan.band_bins[0], plan.band_bins[1], plan.trend_bins, float(plan.threshold),
+                float(plan.bin_hz), float(self.window_sum), N_HARMONICS)
+        if kept is None:
+            keep = (0, self.trend_re[:0], self.trend_im[:0])
+            kept = np.empty((2, 0, n), np.float32)
+        else:
+            keep = (self.keep_band[0], self.keep_re, self.keep_im)
         out = np.empty((len(MAP_KEYS), n), np.float32)
-        _loops.spectral_block(power, noise_median, dc, plan.band_bins[0],
-                              plan.band_bins[1], plan.trend_bins, plan.threshold, plan.bin_hz, self.window_sum,
-                              N_HARMONICS, out)
+        tables = fft_tables(t)
+        if tables is not None:
+            _loops.band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, self.trend_basis_t,
+                             self.trend_re, self.trend_im, keep, kept, peak, out)
+            return out
+        # scipy's FFT: the same loops, a step at a time over the whole band
+        _loops.box_pool_rows_split(left, middle, right, radius, y_start, y_stop, pooled)
+        power, dc = self._spectrum_power(pooled.reshape(t, n), kept if kept.shape[1] else None)
+        median = np.empty(n, np.float32)
+        _loops.noise_median(power, first, rank, median, n)
+        _loops.spectral_block(power, median, dc, *peak[2:], out, n, 0)
         return out
 
 
