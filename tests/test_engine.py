@@ -170,15 +170,16 @@ def test_phase_kernel_pools_projections_exactly_like_pooled_traces(rng):
     np.testing.assert_allclose(out["coherence"].ravel(), coh, atol=2e-5)
 
 
-def test_tile_bins_hold_the_sums_of_the_detected_pooled_traces(rng):
+@pytest.mark.parametrize("n_frames", [300, 301])  # the compiled FFT's path (blocks across rows), scipy's
+def test_tile_bins_hold_the_sums_of_the_detected_pooled_traces(rng, n_frames):
     """Pass 1's Gram bins: per global b x b bin, the sum of the detected pixels' pooled traces."""
-    t = np.arange(300) * 0.05
+    t = np.arange(n_frames) * 0.05
     tissue = np.zeros((1, 22, 26))
     tissue[:, 3:15, 2:13] = 1
     block = (600 + 40 * np.sin(2 * np.pi * 1.2 * t)[:, None, None] * tissue
-             + rng.normal(0, 3, (300, 22, 26))).astype(np.uint16)
-    plan = spectral.plan_spectrum(300, 0.05, (30, 180))
-    q = preprocess.trend_basis(300, 0.05, 0.25)
+             + rng.normal(0, 3, (n_frames, 22, 26))).astype(np.uint16)
+    plan = spectral.plan_spectrum(n_frames, 0.05, (30, 180))
+    q = preprocess.trend_basis(n_frames, 0.05, 0.25)
     y0, x0, b = 13, 6, 4
     out = engine.maps_tile_kernel(block, y0, x0, halo=1, plan=plan, basis=q, gram_bin=b)
     pooled = preprocess.box_pool(block, 1)
