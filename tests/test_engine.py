@@ -198,11 +198,12 @@ def test_tile_bins_hold_the_sums_of_the_detected_pooled_traces(rng, n_frames):
     np.testing.assert_array_equal(maps_only["maps"], out["maps"])
 
 
+@pytest.mark.parametrize("h", [1, 2])  # the radius-1 loop and the general one
 @pytest.mark.parametrize("dtype", [np.uint16, np.float32])
-def test_pooling_from_pieces_equals_pooling_the_padded_tile(rng, dtype):
+def test_pooling_from_pieces_equals_pooling_the_padded_tile(rng, dtype, h):
     """The kernels read a tile and its neighbours' strips where they lie; the numbers must be
     exactly those of pooling one padded array."""
-    h, ty, tx = 2, 9, 13
+    ty, tx = 9, 13
     padded = (rng.random((5, ty + 2 * h, tx + 2 * h)) * 1000).astype(dtype)
     rows = [slice(0, h), slice(h, h + ty), slice(h + ty, None)]
     cols = [slice(0, h), slice(h, h + tx), slice(h + tx, None)]

@@ -100,6 +100,20 @@ def _pool_row(left, middle, right, radius, y, colsum, rowsum, out, row):
     col_left = colsum[:radius]
     col_mid = colsum[radius:radius + nx]
     col_right = colsum[radius + nx:]
+    if radius == 1:  # the default: each sum in one loop, in the same order as the general loops below
+        next1 = colsum[1:]
+        next2 = colsum[2:]
+        for t in range(middle.shape[0]):
+            r0, r1, r2 = middle[t, y], middle[t, y + 1], middle[t, y + 2]
+            col_left[0] = (np.float32(left[t, y, 0]) + np.float32(left[t, y + 1, 0])) + np.float32(left[t, y + 2, 0])
+            for c in range(nx):
+                col_mid[c] = (np.float32(r0[c]) + np.float32(r1[c])) + np.float32(r2[c])
+            col_right[0] = ((np.float32(right[t, y, 0]) + np.float32(right[t, y + 1, 0]))
+                            + np.float32(right[t, y + 2, 0]))
+            dst = out[t, row]
+            for x in range(nx):
+                dst[x] = ((colsum[x] + next1[x]) + next2[x]) * scale
+        return
     for t in range(middle.shape[0]):
         for c in range(radius):
             col_left[c] = np.float32(left[t, y, c])
