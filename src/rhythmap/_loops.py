@@ -421,6 +421,13 @@ def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
 FFT_TRACE_BLOCK = 128
 
 
+@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
+def _rotate_store(yr, yi, row, b, ur, ui, wr, wi):
+    """``y[row, b] = (ur + i ui) (wr + i wi)``: a butterfly output times its twiddle."""
+    yr[row, b] = ur * wr - ui * wi
+    yi[row, b] = ur * wi + ui * wr
+
+
 @numba.jit(**_JIT_NOALIAS)
 def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
     """One radix-``radix`` stage of a Stockham autosort FFT (decimation in frequency), traces innermost.
@@ -455,18 +462,9 @@ def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
                     d13i = xi[i1, b] - xi[i3, b]
                     yr[o0, b] = s02r + s13r
                     yi[o0, b] = s02i + s13i
-                    ur = d02r + d13i  # k = 1: d02 - i d13
-                    ui = d02i - d13r
-                    yr[o1, b] = ur * w1r - ui * w1i
-                    yi[o1, b] = ur * w1i + ui * w1r
-                    ur = s02r - s13r
-                    ui = s02i - s13i
-                    yr[o2, b] = ur * w2r - ui * w2i
-                    yi[o2, b] = ur * w2i + ui * w2r
-                    ur = d02r - d13i  # k = 3: d02 + i d13
-                    ui = d02i + d13r
-                    yr[o3, b] = ur * w3r - ui * w3i
-                    yi[o3, b] = ur * w3i + ui * w3r
+                    _rotate_store(yr, yi, o1, b, d02r + d13i, d02i - d13r, w1r, w1i)  # k = 1: d02 - i d13
+                    _rotate_store(yr, yi, o2, b, s02r - s13r, s02i - s13i, w2r, w2i)
+                    _rotate_store(yr, yi, o3, b, d02r - d13i, d02i + d13r, w3r, w3i)  # k = 3: d02 + i d13
             elif radix == 2:
                 i1 = i0 + s * m
                 o1 = o0 + s
@@ -474,10 +472,7 @@ def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
                 for b in range(width):
                     yr[o0, b] = xr[i0, b] + xr[i1, b]
                     yi[o0, b] = xi[i0, b] + xi[i1, b]
-                    ur = xr[i0, b] - xr[i1, b]
-                    ui = xi[i0, b] - xi[i1, b]
-                    yr[o1, b] = ur * w1r - ui * w1i
-                    yi[o1, b] = ur * w1i + ui * w1r
+                    _rotate_store(yr, yi, o1, b, xr[i0, b] - xr[i1, b], xi[i0, b] - xi[i1, b], w1r, w1i)
             elif radix == 3:
                 c1 = np.float32(-0.5)  # cos(2 pi / 3)
                 s1 = np.float32(-0.8660254037844386)  # -sin(2 pi / 3)
@@ -494,14 +489,8 @@ def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
                     yi[o0, b] = xi[i0, b] + si
                     mr = xr[i0, b] + c1 * sr
                     mi = xi[i0, b] + c1 * si
-                    ur = mr - s1 * di  # k = 1: m + i s1 d
-                    ui = mi + s1 * dr
-                    yr[o1, b] = ur * w1r - ui * w1i
-                    yi[o1, b] = ur * w1i + ui * w1r
-                    ur = mr + s1 * di  # k = 2: m - i s1 d
-                    ui = mi - s1 * dr
-                    yr[o2, b] = ur * w2r - ui * w2i
-                    yi[o2, b] = ur * w2i + ui * w2r
+                    _rotate_store(yr, yi, o1, b, mr - s1 * di, mi + s1 * dr, w1r, w1i)  # k = 1: m + i s1 d
+                    _rotate_store(yr, yi, o2, b, mr + s1 * di, mi - s1 * dr, w2r, w2i)  # k = 2: m - i s1 d
             else:  # radix == 5
                 c1 = np.float32(0.30901699437494745)  # cos(2 pi / 5)
                 c2 = np.float32(-0.8090169943749475)  # cos(4 pi / 5)
@@ -532,22 +521,10 @@ def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
                     n1i = s1 * d14r + s2 * d23r
                     n2r = -(s2 * d14i - s1 * d23i)  # i (s2 d14 - s1 d23)
                     n2i = s2 * d14r - s1 * d23r
-                    ur = m1r + n1r
-                    ui = m1i + n1i
-                    yr[o1, b] = ur * w1r - ui * w1i
-                    yi[o1, b] = ur * w1i + ui * w1r
-                    ur = m2r + n2r
-                    ui = m2i + n2i
-                    yr[o2, b] = ur * w2r - ui * w2i
-                    yi[o2, b] = ur * w2i + ui * w2r
-                    ur = m2r - n2r
-                    ui = m2i - n2i
-                    yr[o3, b] = ur * w3r - ui * w3i
-                    yi[o3, b] = ur * w3i + ui * w3r
-                    ur = m1r - n1r
-                    ui = m1i - n1i
-                    yr[o4, b] = ur * w4r - ui * w4i
-                    yi[o4, b] = ur * w4i + ui * w4r
+                    _rotate_store(yr, yi, o1, b, m1r + n1r, m1i + n1i, w1r, w1i)
+                    _rotate_store(yr, yi, o2, b, m2r + n2r, m2i + n2i, w2r, w2i)
+                    _rotate_store(yr, yi, o3, b, m2r - n2r, m2i - n2i, w3r, w3i)
+                    _rotate_store(yr, yi, o4, b, m1r - n1r, m1i - n1i, w4r, w4i)
 
 
 #: Samples summed into a partial sum before it joins a trend coefficient's

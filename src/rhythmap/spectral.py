@@ -13,7 +13,6 @@ feeds it tiles, one band of rows at a time.
 from __future__ import annotations
 
 import functools
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -186,16 +185,13 @@ def fft_tables(n_frames: int):
             np.cos(np.pi * k / half).astype(np.float32), (-np.sin(np.pi * k / half)).astype(np.float32))
 
 
-def rfft_time(x: np.ndarray, out=None, basis_t=None, coef=None) -> np.ndarray:
+def rfft_time(x: np.ndarray, basis_t=None, coef=None) -> np.ndarray:
     """rFFT along axis 0 of (T, n) float32 traces (C order): (T//2 + 1, n) complex64.
 
     A compiled mixed-radix transform (:func:`rhythmap._loops.rfft_columns`)
-    where T allows it; otherwise scipy's. ``out``, if given, is a complex64
-    array of at least that many values for the compiled transform to fill
-    and return reshaped (scipy's returns a new array). With ``basis_t``
-    (K, T) float32, also fills ``coef`` (K, n) with ``basis_t @ x`` in an
-    order that does not depend on the other traces
-    (:func:`rhythmap._loops.trend_coefficients`).
+    where T allows it; otherwise scipy's. With ``basis_t`` (K, T) float32,
+    also fills ``coef`` (K, n) with ``basis_t @ x`` in an order that does
+    not depend on the other traces (:func:`rhythmap._loops.trend_coefficients`).
 
     Examples
     --------
@@ -210,8 +206,7 @@ def rfft_time(x: np.ndarray, out=None, basis_t=None, coef=None) -> np.ndarray:
     if tables is None:
         _loops.trend_coefficients(x, basis_t, coef)
         return scipy.fft.rfft(x, axis=0)
-    shape = (x.shape[0] // 2 + 1, x.shape[1])
-    spec = np.empty(shape, np.complex64) if out is None else out.reshape(-1)[:math.prod(shape)].reshape(shape)
+    spec = np.empty((x.shape[0] // 2 + 1, x.shape[1]), np.complex64)
     _loops.rfft_columns(x, *tables, spec.view(np.float32), basis_t, coef)
     return spec
 
