@@ -221,7 +221,12 @@ def test_stacks_are_driven_from_both_workers(experiment, tmp_path):
     """A stack's driver task secedes, so its worker looks idle; the runner still sends each new
     driver to the worker driving the fewest stacks. Else the scheduler may put two drivers in one
     process, where their serial steps share one interpreter lock, and 2 workers barely beat 1.
-    On a cluster of its own, so it always has both workers."""
+    On a cluster of its own, so it always has both workers, and without the scheduler's work
+    stealing: the runner's choice is a preference (loose restrictions, so a lost worker's stack
+    runs elsewhere), and stealing may move a driver still queued behind tile tasks to the other
+    worker (distributed's stealing.py takes loose-restricted tasks anywhere). That failed this
+    test about one run in four; what it checks is the runner's choice."""
+    import dask
     from distributed import Client, LocalCluster
     from distributed.diagnostics.plugin import WorkerPlugin
 
@@ -244,8 +249,10 @@ def test_stacks_are_driven_from_both_workers(experiment, tmp_path):
             elif start in ("executing", "long-running") and finish not in ("executing", "long-running"):
                 self.spans[key][1] = now
 
-    with LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0") as own, \
+    with dask.config.set({"distributed.scheduler.work-stealing": False}), \
+            LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0") as own, \
             Client(own.scheduler_address, set_as_default=False) as watcher:
+        assert "stealing" not in own.scheduler.extensions
         watcher.wait_for_workers(2, timeout=60)
         watcher.register_plugin(DriverSpans())
         rc = _run(experiment["folder"] / "good_twice.csv", "-o", tmp_path / "out", "--scheduler",
