@@ -728,7 +728,8 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     one worker process, where their serial steps (persistence, propagation,
     saving) share one interpreter lock. The choice is a preference
     (``allow_other_workers``): if that worker is lost, dask runs the stack
-    elsewhere. Retries and moving work off a lost worker are dask's. A stack
+    elsewhere; the scheduler's work stealing may also move a driver that is
+    still queued behind tile tasks (slower, never wrong). Retries and moving work off a lost worker are dask's. A stack
     that fails is recorded and the batch goes on.
     """
     from distributed import Event, as_completed
