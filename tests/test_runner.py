@@ -225,8 +225,8 @@ def test_stacks_are_driven_from_both_workers(experiment, tmp_path):
     stealing: the runner's choice is a preference (loose restrictions, so a lost worker's stack
     runs elsewhere), and stealing may move a driver still queued behind tile tasks to the other
     worker (distributed's stealing.py takes loose-restricted tasks anywhere); what this checks is
-    the runner's choice. (It still failed in 2 of 4 fresh-clone CI runs on 2026-12-02, with every
-    driver on one worker from the start; the cause is not known yet.)"""
+    the runner's choice. (It failed in 2 of 4 fresh-clone CI runs on 2026-12-02, every driver on
+    one worker: that worker's twin had died on a zarr import race, see run_batch's ImportFirst.)"""
     import dask
     from distributed import Client, LocalCluster
     from distributed.diagnostics.plugin import WorkerPlugin

@@ -733,8 +733,24 @@ def run_batch(plan: BatchPlan, conn: Connection, *, show_progress: bool = True) 
     that fails is recorded and the batch goes on.
     """
     from distributed import Event, as_completed
+    from distributed.diagnostics.plugin import WorkerPlugin
+
+    class ImportFirst(WorkerPlugin):
+        """Import zarr and the engine on each worker (now and as workers join) before any task
+        arrives. A fresh worker otherwise imports zarr while unpickling its first task on the
+        event-loop thread as a task thread imports it too; Python's import then fails with a
+        partly initialised module, the worker's stream from the scheduler dies, and every
+        stack runs on the other workers (seen in CI)."""
+
+        name = "rhythmap-import-first"
+
+        def setup(self, worker):
+            import zarr  # noqa: F401
+
+            import rhythmap.engine  # noqa: F401
 
     client = conn.client
+    client.register_plugin(ImportFirst())
     in_flight = plan.in_flight or conn.expected_threads + 1
     run_id = uuid.uuid4().hex[:8]
     stop = Event(f"rhythmap-batch-stop-{run_id}", client=client)
