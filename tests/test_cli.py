@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -38,6 +39,18 @@ def test_analyze_writes_outputs_and_a_summary(tmp_path, sample_tif):
     res = rhythmap.load_result(out)
     sheet = truth["regions"] == 1
     assert np.nanmedian(np.abs(res.rate_bpm[sheet] - truth["rate_bpm"][sheet])) < 0.5
+    # one line per rhythm reference: loop score, beats, mean rate and beat-to-beat variability
+    lines = re.findall(r"reference (\d+): loop score ([\d.]+), (\d+) beats, mean rate ([\d.]+) bpm, "
+                       r"beat-interval CV ([\d.]+)", p.stdout)
+    assert sorted(int(m[0]) for m in lines) == sorted(res.references)
+    for label, score, beats, rate, cv in lines:
+        ref = res.references[int(label)]
+        assert float(score) == pytest.approx(ref.score, abs=0.006)
+        assert int(beats) == len(ref.beat_times_s) > 0
+        assert float(rate) == pytest.approx(ref.rate_mean_bpm, abs=0.006)
+        assert float(cv) == pytest.approx(ref.interval_cv, abs=6e-4)
+    assert float(lines[[int(m[0]) for m in lines].index(1)][3]) == pytest.approx(float(truth["rate_bpm"][sheet][0]),
+                                                                                abs=0.5)
 
 
 def test_options_from_the_shared_table(tmp_path, sample_tif):

@@ -43,7 +43,7 @@ def test_same_numbers_for_any_chunking_and_tile_size(well):
         results.append(rhythmap.analyze(st, (20, 150), memory_budget_mb=budget))
     for r in results[1:]:
         # the per-pixel maps are the same to the last bit (each trace's arithmetic is its own)
-        for key in ("rate_bpm", "amplitude", "periodicity"):
+        for key in ("rate_bpm", "period_s", "amplitude", "periodicity"):
             np.testing.assert_array_equal(getattr(r, key), getattr(results[0], key))
         # the phase stage also uses the Gram bins, which tiles sum in their own order: rounding only
         # the phase stage (from the kept spectra) does not depend on the tiles either

@@ -61,19 +61,31 @@ def test_drifting_rate_followed_by_the_reference(ramp):
     assert np.mean(np.abs(np.full_like(true_rate, f_fixed * 60)[inner] - true_rate[inner])) > 5.0
 
 
-def test_plane_wave_activation_delay_and_coherence():
-    """Circular RMS error of the activation delay <= 2 % of the period (DESIGN.md target)."""
+@pytest.mark.parametrize("speed_um_s", [6000.0, 550.0])
+def test_plane_wave_activation_delay_and_coherence(speed_um_s):
+    """Circular RMS error of the activation delay <= 2 % of the period (DESIGN.md target).
+
+    A fast wave crosses the sheet in 8 % of the period; a slow one in 88 %, so
+    the delays fill most of the circle and a delay map off by a scale factor
+    (e.g. a wrong period) cannot pass: the fitted slope of measured against
+    true delay must be 1 within 2 %.
+    """
     s = synthetic.plane_wave_scene((300, 48, 48), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
-                                   speed_um_s=6000.0, direction_deg=30.0, noise_sd=20.0, rng=2)
+                                   speed_um_s=speed_um_s, direction_deg=30.0, noise_sd=20.0, rng=2)
     res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
     period = 60 / 90.0
     assert res.regions.max() == 1
-    err = np.angle(np.exp(2j * np.pi * (res.delay_s - s.truth["delay_s"]) / period)) / (2 * np.pi)
+    truth = s.truth["delay_s"]
+    if speed_um_s < 1000:
+        assert np.ptp(truth) > 0.8 * period  # the test means something only if the delays span the period
+    err = np.angle(np.exp(2j * np.pi * (res.delay_s - truth) / period)) / (2 * np.pi)
     rms = np.sqrt(np.nanmean(err ** 2))
     assert rms <= 0.02
     assert np.isfinite(res.delay_s).mean() > 0.95
+    ok = np.isfinite(res.delay_s)
+    assert abs(np.polyfit(truth[ok], res.delay_s[ok], 1)[0] - 1.0) < 0.02
     ref_period = res.references[1].beat_intervals_s.mean()  # delays lie in [0, the region's mean period)
-    d = res.delay_s[np.isfinite(res.delay_s)]
+    d = res.delay_s[ok]
     assert np.all((d >= 0) & (d < ref_period))
     assert np.nanmedian(res.coherence) > 0.9
 

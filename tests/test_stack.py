@@ -143,6 +143,35 @@ def test_video_file(tmp_path, rng):
     np.testing.assert_array_equal(s.data.compute(), gray)
 
 
+def test_mp4_h264_video_gives_its_frame_rate_and_its_beat(tmp_path):
+    """An H.264 MP4 (lossy, colour: yuv420p), as a phone or a high-speed camera's export would be:
+    the frame interval comes from the container and the beat survives the codec."""
+    import av
+
+    p = tmp_path / "beat.mp4"
+    n, h, w, fps = 200, 32, 48, 50
+    t = np.arange(n)[:, None, None] / fps
+    frames = (120 + 60 * np.sin(2 * np.pi * 1.5 * t) * np.ones((1, h, w))).astype(np.uint8)
+    with av.open(str(p), "w") as out:
+        stream = out.add_stream("libx264", rate=fps, options={"crf": "12"})
+        stream.width, stream.height, stream.pix_fmt = w, h, "yuv420p"
+        for f in frames:
+            rgb = np.repeat(f[:, :, None], 3, axis=2)
+            for packet in stream.encode(av.VideoFrame.from_ndarray(rgb, format="rgb24")):
+                out.mux(packet)
+        for packet in stream.encode():
+            out.mux(packet)
+    s = open_stack(p)
+    assert s.shape == (n, h, w)
+    assert s.frame_interval_s == pytest.approx(1 / fps)
+    assert np.abs(s.data.compute().astype(float) - frames).mean() < 3  # luminance, within the codec's loss
+    import rhythmap
+
+    res = rhythmap.analyze(s, (60, 200), maps_only=True)
+    assert np.isfinite(res.rate_bpm).mean() > 0.95
+    assert np.nanmedian(res.rate_bpm) == pytest.approx(90.0, abs=0.5)
+
+
 def test_a_video_too_big_for_memory_points_to_convert_which_streams_it(tmp_path, rng, monkeypatch):
     from rhythmap import stack as stack_mod
     from rhythmap.convert import convert_stack
