@@ -293,14 +293,6 @@ class PaddedTile:
                     part[:, a - r0:b - r0] = piece[:, a - lo:b - lo]
         return parts + (0,)
 
-    def pooled_rows(self, r0: int, r1: int) -> np.ndarray:
-        """Box-pooled output rows r0:r1, as (T, (r1 - r0) * tx) float32 traces."""
-        left, middle, right, y = self.band_pieces(r0, r1)
-        t = self.shape[0]
-        out = np.empty((t, r1 - r0, middle.shape[2]), np.float32)
-        _loops.box_pool_rows_split(left, middle, right, self.halo, y, y + r1 - r0, out)
-        return out.reshape(t, -1)
-
 
 # ------------------------------------------------------------------ kept spectra
 def _band_rows(tx: int, columns: int) -> int:
@@ -1119,16 +1111,38 @@ TILE_LOOP_PX = 16
 
 
 def _gather_bins(results, labels, gram_bin):
-    """Mean trace of every Gram bin over all tiles, and the region each bin belongs to."""
+    """Mean trace of every Gram bin over all tiles, and the region each bin belongs to.
+
+    Bins come out in the order of their global ids, whatever the tiling; a
+    bin cut by a tile edge adds its parts in tile order. A tile's bins are
+    runs of consecutive output columns (one run per row of bins), so they
+    are copied as slices, not gathered column by column (which, with a
+    reduction over mostly single parts, cost most of this step).
+    """
     all_ids = np.concatenate([r["bins"] for r in results]) if results else np.zeros(0, np.int64)
     if all_ids.size == 0:
         return np.zeros((0, 0), np.float32), np.zeros(0, np.int32)
-    # A bin cut by a tile edge has a part in each tile: add the parts in tile order.
-    order = np.argsort(all_ids, kind="stable")
-    ids, start = np.unique(all_ids[order], return_index=True)
-    sums = np.add.reduceat(np.concatenate([r["bin_sums"] for r in results], axis=1)[:, order], start, axis=1)
-    counts = np.add.reduceat(np.concatenate([r["bin_counts"] for r in results])[order], start)
-    return sums / counts.astype(np.float32), regions_mod.bin_labels(labels, ids, gram_bin)
+    ids = np.unique(all_ids)
+    sums = np.empty((results[0]["bin_sums"].shape[0], ids.size), np.float32)
+    counts = np.zeros(ids.size, np.int64)
+    filled = np.zeros(ids.size, bool)
+    for r in results:
+        pos = np.searchsorted(ids, r["bins"])
+        counts[pos] += r["bin_counts"]
+        cuts = np.flatnonzero(np.diff(pos) != 1) + 1
+        for a, b in zip(np.r_[0, cuts].tolist(), np.r_[cuts, pos.size].tolist()):
+            out, part = sums[:, pos[a]:pos[a] + b - a], r["bin_sums"][:, a:b]
+            new = ~filled[pos[a]:pos[a] + b - a]
+            if new.all():
+                out[...] = part
+            elif not new.any():
+                out += part
+            else:
+                out[:, new] = part[:, new]
+                out[:, ~new] += part[:, ~new]
+            filled[pos[a]:pos[a] + b - a] = True
+    sums /= counts.astype(np.float32)
+    return sums, regions_mod.bin_labels(labels, ids, gram_bin)
 
 
 def _drain(tasks, stage, cancel, source="the stack"):
