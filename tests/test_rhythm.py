@@ -159,3 +159,32 @@ def test_worker_processes_give_the_same_references_and_a_tile_loop_map(well):
             if not there.regions[y0:y0 + 16, x0:x0 + 16].any():
                 assert np.all(np.isnan(loop[y0:y0 + 16, x0:x0 + 16]))
     assert "loop_score_tiles" not in here.extra_maps
+
+
+def test_a_tile_of_the_loop_map_without_a_score_is_reported(well, monkeypatch):
+    """A tile whose loop score cannot be computed stays NaN and the run says so; a real error is raised."""
+    from rhythmap import engine, rhythm
+    from rhythmap.errors import InputError
+
+    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    plain = rhythm.loop_score_of_traces
+    calls = []
+
+    def flaky(traces, *args, **kwargs):
+        calls.append(1)
+        if len(calls) == 2:
+            raise InputError("too few windows")
+        return plain(traces, *args, **kwargs)
+
+    monkeypatch.setattr(engine, "_process_pool", lambda n: None)  # in this thread, so the patch applies
+    monkeypatch.setattr(rhythm, "loop_score_of_traces", flaky)
+    res = rhythmap.analyze(st, (20, 150), tile_loop_map=True)
+    warned = [w for w in res.parameters["warnings"] if w.startswith("loop-score map")]
+    assert len(warned) == 1 and "1 tile(s)" in warned[0] and "too few windows" in warned[0]
+    loop = res.extra_maps["loop_score_tiles"]
+    n_scored = len({(y // 16, x // 16) for y, x in zip(*np.nonzero(np.isfinite(loop)))})
+    assert n_scored == len(calls) - 1
+
+    monkeypatch.setattr(rhythm, "loop_score_of_traces", lambda *a, **k: 1 / 0)
+    with pytest.raises(ZeroDivisionError):
+        rhythmap.analyze(st, (20, 150), tile_loop_map=True)

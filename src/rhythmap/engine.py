@@ -853,8 +853,12 @@ def _iter_analyze(stack, rate_range_bpm, cancel, cleanup, options):
                 raise CancelledError("the analysis was cancelled")
         if opts["tile_loop_map"]:
             yield Progress(0, 1, "loop map")
-            extra_loop = _tile_loop_map(traces, bin_region, results, labels, m["rate_bpm"], gram_bin,
-                                        stack.frame_interval_s, opts)
+            extra_loop, failed = _tile_loop_map(traces, bin_region, results, labels, m["rate_bpm"], gram_bin,
+                                                stack.frame_interval_s, opts)
+            if failed:
+                (ty0, tx0), why = failed[0]
+                warn.append(f"loop-score map: {len(failed)} tile(s) of {TILE_LOOP_PX} px have no score "
+                            f"(e.g. the tile at y={ty0 * TILE_LOOP_PX}, x={tx0 * TILE_LOOP_PX}: {why})")
             yield Progress(1, 1, "loop map")
         timings["references_s"] = time.perf_counter() - t_ref
 
@@ -1082,7 +1086,12 @@ def _reset_pool():
 
 
 def _tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, frame_interval_s, opts):
-    """Loop score of every TILE_LOOP_PX square tile, from the Gram bins inside it, in worker processes."""
+    """Loop score of every TILE_LOOP_PX square tile, from the Gram bins inside it, in worker processes.
+
+    Returns the (Y, X) map (NaN where a tile has no score) and the tiles whose
+    score could not be computed, as ((tile row, tile column), reason) pairs;
+    an error that is not a :class:`~rhythmap.errors.InputError` is raised.
+    """
     ids = np.array(sorted({b for r in results for b in r["bins"].tolist()}), np.int64)
     by, bx = (ids >> 32) * gram_bin, (ids & 0xFFFFFFFF) * gram_bin
     tile_id = (by // TILE_LOOP_PX) * 1_000_000 + (bx // TILE_LOOP_PX)
@@ -1100,10 +1109,15 @@ def _tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, fram
                           {"n_landmarks": min(100, opts["n_landmarks"]),
                            "max_frames": opts["max_frames_topology"]})
     out = np.full(labels.shape, np.nan, np.float32)
+    failed = []
     for (ty, tx), score in _run_in_processes(jobs, max(1, opts["worker_processes"])):
-        if not isinstance(score, BaseException):
+        if isinstance(score, InputError):
+            failed.append(((ty, tx), str(score)))
+        elif isinstance(score, BaseException):
+            raise score
+        else:
             out[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX] = score
-    return out
+    return out, sorted(failed)
 
 
 #: Edge of the tiles of the optional loop-score map, pixels.
