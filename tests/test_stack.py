@@ -32,6 +32,21 @@ def test_imagej_tiff_metadata_round_trip(tmp_path, frames):
     assert s2.meta["frame_interval_from"] == "argument"
 
 
+@pytest.mark.parametrize("unit, um_per_unit", [("micron", 1.0), ("\\u00B5m", 1.0), ("nm", 1e-3), ("mm", 1e3),
+                                              ("pixel", None)])
+def test_imagej_length_units(tmp_path, frames, unit, um_per_unit):
+    """Reference: tifffile writes ImageJ's ``unit`` as given (ImageJ itself writes the escaped
+    micro sign); the pixel size comes back in micrometres, and a unit that is not a length gives none."""
+    p = tmp_path / "u.tif"
+    tifffile.imwrite(p, frames, imagej=True, resolution=(4.0, 4.0),  # 4 pixels per unit
+                     metadata={"axes": "TYX", "finterval": 0.02, "unit": unit})
+    s = open_stack(p)
+    if um_per_unit is None:
+        assert s.pixel_size_um is None
+    else:
+        assert s.pixel_size_um == pytest.approx(um_per_unit / 4.0)
+
+
 def test_compressed_tiff_is_read_lazily_and_exactly(tmp_path, frames):
     p = tmp_path / "z.tif"
     tifffile.imwrite(p, frames, imagej=True, compression="zlib", metadata={"axes": "TYX", "finterval": 0.05})
