@@ -275,32 +275,7 @@ def _open_tiff(path: Path, channel, plane):
     import tifffile
     import zarr
 
-    try:
-        tif = tifffile.TiffFile(path)
-    except Exception as exc:  # tifffile raises several types for broken files
-        raise InputError(f"cannot read {str(path)!r} as TIFF: {exc}. Is the file complete?") from None
-    with tif:
-        if not tif.series:
-            raise InputError(f"{str(path)!r}: cannot read any image in it as TIFF. Is the file complete?")
-        series = tif.series[0]
-        axes = series.axes
-        file_meta: dict[str, Any] = {}
-        if tif.is_ome and tif.ome_metadata:
-            file_meta.update(_ome_xml_meta(tif.ome_metadata))
-        if tif.is_imagej and tif.imagej_metadata:
-            ij = tif.imagej_metadata
-            if ij.get("finterval") and "frame_interval_s" not in file_meta:
-                file_meta["frame_interval_s"] = float(ij["finterval"])
-                file_meta["frame_interval_from"] = "ImageJ finterval"
-            if "pixel_size_um" not in file_meta:
-                ps = _tiff_resolution_um(tif.pages[0], ij.get("unit"))
-                if ps is not None:
-                    file_meta["pixel_size_um"] = ps
-        elif "pixel_size_um" not in file_meta:
-            ps = _tiff_resolution_um(tif.pages[0], None)
-            if ps is not None:
-                file_meta["pixel_size_um"] = ps
-        contiguous = series.dataoffset is not None
+    axes, file_meta, contiguous = _tiff_header(path)
     if contiguous:
         # An uncompressed, contiguous TIFF maps straight into memory: a tile read
         # touches only its own bytes, whatever the tile shape.
@@ -313,6 +288,105 @@ def _open_tiff(path: Path, channel, plane):
         raise InputError(f"{str(path)!r}: series axes {axes!r} do not match data shape {data.shape}.")
     data, chosen = _reduce_axes(data, axes, channel, plane, repr(str(path)))
     return data, file_meta, {"axes": axes, "format": "tiff", **chosen}
+
+
+def _tiff_header(path: Path) -> tuple[str, dict[str, Any], bool]:
+    """(series axes, metadata, whether the pixels lie contiguous) of a TIFF, or an
+    :class:`InputError` when the file is cut short or its pages cannot be read.
+
+    A file is taken as incomplete when its contiguous pixels run past its end,
+    when it holds fewer pages than its ImageJ or OME header describes, or when
+    tifffile found offsets beyond the end and fell back to a single image.
+    """
+    import tifffile
+
+    fix = "Copy it again from the acquisition computer, or export it again."
+    with _tifffile_complaints() as complaints:
+        try:
+            tif = tifffile.TiffFile(path)
+        except Exception as exc:  # tifffile raises several types for broken files
+            raise InputError(f"cannot read {str(path)!r} as TIFF: {exc}. Is the file complete?") from None
+        try:
+            with tif:
+                if not tif.series:
+                    raise InputError(f"{str(path)!r}: cannot read any image in it as TIFF. Is the file complete?")
+                series = tif.series[0]
+                axes = series.axes
+                file_meta: dict[str, Any] = {}
+                expected = None  # images the file's own header says it holds
+                if tif.is_ome and tif.ome_metadata:
+                    file_meta.update(_ome_xml_meta(tif.ome_metadata))
+                    expected = _ome_plane_count(tif.ome_metadata)
+                if tif.is_imagej and tif.imagej_metadata:
+                    ij = tif.imagej_metadata
+                    expected = int(ij.get("images", 0) or 0) or expected
+                    if ij.get("finterval") and "frame_interval_s" not in file_meta:
+                        file_meta["frame_interval_s"] = float(ij["finterval"])
+                        file_meta["frame_interval_from"] = "ImageJ finterval"
+                    if "pixel_size_um" not in file_meta:
+                        ps = _tiff_resolution_um(tif.pages[0], ij.get("unit"))
+                        if ps is not None:
+                            file_meta["pixel_size_um"] = ps
+                elif "pixel_size_um" not in file_meta:
+                    ps = _tiff_resolution_um(tif.pages[0], None)
+                    if ps is not None:
+                        file_meta["pixel_size_um"] = ps
+                n_images = int(np.prod([n for n, a in zip(series.shape, axes) if a not in "YXS"], dtype=np.int64))
+                contiguous = series.dataoffset is not None
+                if not contiguous and expected:  # every page of the series must be there (reads the page chain)
+                    n_images = min(n_images, len(tif.pages))
+                short = contiguous and os.path.getsize(path) < series.dataoffset + series.nbytes
+        except InputError:
+            raise
+        except Exception as exc:  # tifffile raises several types on a broken page chain
+            raise InputError(f"{str(path)!r} is truncated or corrupt: reading its pages failed "
+                             f"({type(exc).__name__}: {exc}). {fix}") from None
+    broken = any("offset" in c for c in complaints)  # the file points past its own end
+    if short or (expected and n_images < expected) or (broken and n_images <= 1):
+        found = (f"its header describes {expected} images but only {n_images} can be read; "
+                 if expected and n_images < expected else "")
+        said = f" (tifffile: {complaints[0]})" if complaints else ""
+        raise InputError(f"{str(path)!r} is truncated or corrupt: {found}the file ends before its image data "
+                         f"does{said}. {fix}")
+    return axes, file_meta, contiguous
+
+
+class _tifffile_complaints:
+    """Collect what tifffile logs while a file is opened, instead of printing it.
+
+    tifffile logs broken page offsets and inconsistent headers as warnings,
+    then falls back to whatever it can read; the messages become part of
+    rhythmap's own error when the file turns out to be incomplete.
+    """
+
+    def __enter__(self) -> list[str]:
+        import logging
+
+        self.messages: list[str] = []
+        self.logger = logging.getLogger("tifffile")
+        self.handler = logging.Handler(logging.WARNING)
+        self.handler.emit = lambda record: self.messages.append(record.getMessage().strip())
+        self.propagate = self.logger.propagate
+        self.logger.addHandler(self.handler)
+        self.logger.propagate = False
+        return self.messages
+
+    def __exit__(self, *exc) -> None:
+        self.logger.removeHandler(self.handler)
+        self.logger.propagate = self.propagate
+
+
+def _ome_plane_count(xml: str) -> int | None:
+    """SizeT x SizeZ x SizeC of an OME-XML document's first image, or None."""
+    try:
+        root = ET.fromstring(xml)
+    except ET.ParseError:
+        return None
+    pixels = next((el for el in root.iter() if el.tag.endswith("Pixels")), None)
+    try:
+        return int(pixels.get("SizeT")) * int(pixels.get("SizeZ")) * int(pixels.get("SizeC"))
+    except (AttributeError, TypeError, ValueError):
+        return None
 
 
 def _default_chunks(shape, dtype):
