@@ -103,6 +103,46 @@ def test_bad_input_exits_2_without_traceback(tmp_path, sample_tif, args, match):
     assert (existing / "precious.txt").exists() and sample_tif.exists()
 
 
+def _bad_file(kind, path):
+    rng = np.random.default_rng(0)
+    ij = {"imagej": True, "metadata": {"axes": "TYX", "finterval": 0.05}}
+    if kind == "2-D image":
+        tifffile.imwrite(path, np.zeros((32, 32), np.uint16))
+    elif kind == "one frame":
+        tifffile.imwrite(path, np.zeros((1, 32, 32), np.uint16), **ij)
+    elif kind == "too few frames":
+        tifffile.imwrite(path, rng.integers(0, 100, (5, 32, 32)).astype(np.uint16), **ij)
+    elif kind == "NaN frame":
+        a = rng.normal(100, 1, (100, 16, 16)).astype(np.float32)
+        a[3, 2, 2] = np.nan
+        tifffile.imwrite(path, a, **ij)
+    elif kind == "constant":
+        tifffile.imwrite(path, np.full((100, 16, 16), 7, np.uint16), **ij)
+    elif kind == "truncated":
+        tifffile.imwrite(path, rng.integers(0, 100, (100, 16, 16)).astype(np.uint16), **ij)
+        path.write_bytes(path.read_bytes()[:20000])
+
+
+@pytest.mark.parametrize("kind, match", [
+    ("2-D image", "single image with no time axis"),
+    ("one frame", "single image with no time axis"),
+    ("too few frames", "at least 8 frames"),
+    ("NaN frame", "NaN or infinite values (frames [3]"),
+    ("constant", "the stack is constant"),
+    ("truncated", "truncated or corrupt"),
+])
+def test_bad_stacks_exit_2_with_their_reason(tmp_path, kind, match):
+    """The bad-input table of the command line: each stack is refused with exit code 2, a message
+    that says what is wrong (and what to do), no traceback, and no output folder."""
+    stack = tmp_path / "bad.tif"
+    _bad_file(kind, stack)
+    p = run("analyze", stack, "-o", tmp_path / "out", "--rate-range", "60", "180")
+    assert p.returncode == 2, p.stderr
+    assert "Traceback" not in p.stderr
+    assert match in p.stderr, p.stderr
+    assert not (tmp_path / "out").exists()
+
+
 def test_demo_in_a_clean_folder(tmp_path):
     p = run("demo", "-o", tmp_path / "demo", cwd=tmp_path)
     assert p.returncode == 0, p.stderr

@@ -260,7 +260,10 @@ def _reduce_axes(data, axes: str, channel, plane, where: str):
         if len(axes) == 3:  # no explicit time axis, e.g. a plain page series: the first is time
             axes = "T" + axes[1:]
         else:
-            raise InputError(f"{where} has axes {axes}: no time axis to analyse.")
+            what = "a single image" if axes in ("YX", "YXS") else f"axes {axes}"
+            raise InputError(f"{where} holds {what} with no time axis: there is no time series to analyse. "
+                             "rhythmap needs a (T, Y, X) stack of at least 8 frames; if the frames were saved "
+                             "as separate files, combine them into one stack first.")
     extra = [a for a in axes if a not in "TYX"]
     if extra or len(axes) != 3:
         raise InputError(f"{where} has axes {axes} after choosing channel/plane; expected T, Y, X.")
