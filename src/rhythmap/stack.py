@@ -298,7 +298,7 @@ def _tiff_header(path: Path) -> tuple[str, dict[str, Any], bool]:
     :class:`InputError` when the file is cut short or its pages cannot be read.
 
     A file is taken as incomplete when its contiguous pixels run past its end,
-    when it holds fewer pages than its ImageJ or OME header describes, or when
+    when it holds fewer pages than its ImageJ header describes, or when
     tifffile found offsets beyond the end and fell back to a single image.
     """
     import tifffile
@@ -316,13 +316,14 @@ def _tiff_header(path: Path) -> tuple[str, dict[str, Any], bool]:
                 series = tif.series[0]
                 axes = series.axes
                 file_meta: dict[str, Any] = {}
-                expected = None  # images the file's own header says it holds
+                # images an ImageJ header says the file holds (ImageJ writes one file, unlike
+                # OME-TIFF, whose planes may lie in several files of a multi-file dataset)
+                expected = None
                 if tif.is_ome and tif.ome_metadata:
                     file_meta.update(_ome_xml_meta(tif.ome_metadata))
-                    expected = _ome_plane_count(tif.ome_metadata)
                 if tif.is_imagej and tif.imagej_metadata:
                     ij = tif.imagej_metadata
-                    expected = int(ij.get("images", 0) or 0) or expected
+                    expected = int(ij.get("images", 0) or 0) or None
                     if ij.get("finterval") and "frame_interval_s" not in file_meta:
                         file_meta["frame_interval_s"] = float(ij["finterval"])
                         file_meta["frame_interval_from"] = "ImageJ finterval"
@@ -377,19 +378,6 @@ class _tifffile_complaints:
     def __exit__(self, *exc) -> None:
         self.logger.removeHandler(self.handler)
         self.logger.propagate = self.propagate
-
-
-def _ome_plane_count(xml: str) -> int | None:
-    """SizeT x SizeZ x SizeC of an OME-XML document's first image, or None."""
-    try:
-        root = ET.fromstring(xml)
-    except ET.ParseError:
-        return None
-    pixels = next((el for el in root.iter() if el.tag.endswith("Pixels")), None)
-    try:
-        return int(pixels.get("SizeT")) * int(pixels.get("SizeZ")) * int(pixels.get("SizeC"))
-    except (AttributeError, TypeError, ValueError):
-        return None
 
 
 def _default_chunks(shape, dtype):
