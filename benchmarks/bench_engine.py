@@ -5,8 +5,8 @@ chunks (T, 128, 128)), then runs each step in its own fresh process, which
 reports its wall time and peak resident memory:
 
   read      one bare pass that reads and decompresses every chunk (the limit)
-  maps      rhythmap.analyze with maps_only=True (spectral maps)
-  full      rhythmap.analyze (maps + Gram + references + per-pixel phase)
+  maps      tempofield.analyze with maps_only=True (spectral maps)
+  full      tempofield.analyze (maps + Gram + references + per-pixel phase)
   naive     read in bands + numpy.fft.rfft along time + argmax (a typical script)
   maps/4    the spectral maps of a quarter of the field (memory must not grow with the stack)
   maps/2    the spectral maps of the top half of the field (same width, half the height)
@@ -73,28 +73,28 @@ def step(name: str, store: str) -> dict:
         import ripser  # noqa: F401 - persistence (imported by the engine when the references start)
         import skimage.restoration  # noqa: F401 - unwrapping in the propagation step
 
-        import rhythmap
-        import rhythmap.rhythm
-        from rhythmap import _loops
+        import tempofield
+        import tempofield.kernels.rhythm
+        from tempofield import kernels
 
-        _loops.warm_up()
+        kernels.warm_up()
     t0 = time.perf_counter()
     if name == "read":
         x = da.from_zarr(zarr.open_group(store, mode="r")["0"])
         x.map_blocks(lambda b: np.zeros((1, 1, 1), b.dtype), chunks=(1, 1, 1)).compute(scheduler="threads")
     elif name in ("maps", "full", "maps/4", "maps/2"):
-        st = rhythmap.open_stack(store)
+        st = tempofield.open_stack(store)
         if name in ("maps/4", "maps/2"):  # a quarter of the field; the top half (same width)
             h = st.shape[1] // 2
             w = h if name == "maps/4" else st.shape[2]
-            st = rhythmap.open_stack(st.data[:, :h, :w], frame_interval_s=st.frame_interval_s)
-        res = rhythmap.analyze(st, (30, 180), maps_only=(name != "full"))
+            st = tempofield.open_stack(st.data[:, :h, :w], frame_interval_s=st.frame_interval_s)
+        res = tempofield.analyze(st, (30, 180), maps_only=(name != "full"))
         stages = {k: round(v, 2) for k, v in res.timings.items()}
     elif name == "topology":
         # Everything after the Gram pass for T = 1000 frames: G = X X^T of the capped
         # bin traces (20 000, the default cap), sliding-window distances, persistence
         # on 200 landmarks (the default), circular coordinates, beats.
-        from rhythmap.rhythm import region_reference
+        from tempofield.kernels.rhythm import region_reference
 
         rng = np.random.default_rng(1)
         t = np.arange(1000)[:, None] * 0.02
@@ -138,7 +138,7 @@ def main(argv=None) -> int:
         print(json.dumps(step(args.step, args.store)))
         return 0
     side = int(np.sqrt(args.size_gb * 1e9 / 2 / args.frames) // 128 * 128)
-    work = Path(args.workdir or tempfile.mkdtemp(prefix="rhythmap-bench-"))
+    work = Path(args.workdir or tempfile.mkdtemp(prefix="tempofield-bench-"))
     store = work / f"bench_{args.frames}x{side}x{side}.ome.zarr"
     if not store.exists():
         print(f"writing {store} ({args.frames} x {side} x {side} uint16, "

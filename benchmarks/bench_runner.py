@@ -10,9 +10,9 @@ would otherwise use the second core even with one worker:
 
 * direct   - a plain loop ``analyze(stack) ; result.save(folder)`` on 1 worker, 1 core
              (the default client, so tiles run on the worker as in the runner)
-* runner/1 - ``rhythmap batch`` on 1 worker, 1 core, one stack at a time
-* runner   - ``rhythmap batch`` on 1 worker, 1 core, stacks pipelined (its default)
-* runner   - ``rhythmap batch`` on 2 workers, 2 cores (its default)
+* runner/1 - ``tempofield batch`` on 1 worker, 1 core, one stack at a time
+* runner   - ``tempofield batch`` on 1 worker, 1 core, stacks pipelined (its default)
+* runner   - ``tempofield batch`` on 2 workers, 2 cores (its default)
 
 and prints times, stacks per second, the speed-up 2 vs 1 worker, and the
 overhead per stack of runner/1 against direct. Per-stack reports are off in
@@ -30,14 +30,13 @@ import tempfile
 import time
 from pathlib import Path
 
-
 ALL_CORES = set(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else set()
 
 
 def make_stacks(folder: Path, n: int, shape) -> list[Path]:
-    import rhythmap
-    from rhythmap import synthetic
-    from rhythmap.convert import convert_stack
+    import tempofield
+    from tempofield.engine.convert import convert_stack
+    from tempofield.scenes import synthetic
 
     paths = []
     t, y, x = shape
@@ -47,7 +46,7 @@ def make_stacks(folder: Path, n: int, shape) -> list[Path]:
             s = synthetic.well_scene(shape, frame_interval_s=0.04, rate_bpm=60 + 4 * i,
                                      pacemaker=(0.3 * y, 0.3 * x), cluster_center=(0.7 * y, 0.7 * x),
                                      cluster_radius_px=0.1 * min(y, x), rng=i)
-            convert_stack(rhythmap.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), path)
+            convert_stack(tempofield.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), path)
         paths.append(path)
     return paths
 
@@ -64,22 +63,22 @@ def cluster(n_workers):
 
 
 def time_direct(paths, out: Path, rate) -> float:
-    import rhythmap
+    import tempofield
 
     t0 = time.perf_counter()
     for p in paths:
-        res = rhythmap.analyze(rhythmap.open_stack(p), rate)
+        res = tempofield.analyze(tempofield.open_stack(p), rate)
         res.save(out / p.name.replace(".ome.zarr", ""))
     return time.perf_counter() - t0
 
 
 def time_runner(paths, out: Path, rate, address, *extra) -> float:
-    from rhythmap import batch
+    from tempofield.batch import runner
 
     argv = [*map(str, paths), "-o", str(out), "--scheduler", address, "--rate-range", *map(str, rate),
             "--no-report", "--quiet", *extra]
     t0 = time.perf_counter()
-    rc = batch.main(argv)
+    rc = runner.main(argv)
     elapsed = time.perf_counter() - t0
     if rc != 0:
         raise SystemExit(f"the batch failed (exit code {rc}); see {out / 'failures.csv'}")
@@ -93,7 +92,7 @@ def main(argv=None) -> int:
     p.add_argument("--workdir", help="where to keep the stacks (default: a temporary folder)")
     args = p.parse_args(argv)
     rate = (30, 150)
-    work = Path(args.workdir or tempfile.mkdtemp(prefix="rhythmap-bench-runner-"))
+    work = Path(args.workdir or tempfile.mkdtemp(prefix="tempofield-bench-runner-"))
     work.mkdir(parents=True, exist_ok=True)
     paths = make_stacks(work / "stacks", args.n_stacks, tuple(args.shape))
     mb = sum(f.stat().st_size for p_ in paths for f in p_.rglob("*") if f.is_file()) / 2**20

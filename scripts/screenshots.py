@@ -75,20 +75,20 @@ def main(argv=None) -> int:
         return _run_under_xvfb(sys.argv[1:] if argv is None else argv)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    # Notes about napari's Qt5 support are not about rhythmap; keep their toasts out of the pictures.
+    # Notes about napari's Qt5 support are not about tempofield; keep their toasts out of the pictures.
     warnings.filterwarnings("ignore", message="System theme detection")
     warnings.filterwarnings("ignore", message="napari support for the PyQt5")
     import napari
     from napari.utils.notifications import notification_manager
     from qtpy.QtWidgets import QApplication
 
-    from rhythmap.plugin._inspector import RegionInspector
-    from rhythmap.plugin._widget import AnalysisPanel
+    from tempofield.plugin._inspector import RegionInspector
+    from tempofield.plugin._widget import AnalysisPanel
 
-    viewer = napari.Viewer(title="rhythmap", show=True)
+    viewer = napari.Viewer(title="tempofield", show=True)
     app = QApplication.instance()
     viewer.window.resize(1400, 900)
-    viewer.open_sample("rhythmap", "well_sheet")
+    viewer.open_sample("tempofield", "well_sheet")
     raw = viewer.layers["well sheet"]
     panel = AnalysisPanel(viewer)
     viewer.window.add_dock_widget(panel, name="Rhythm analysis", area="right")

@@ -5,13 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from rhythmap import _loops, synthetic
+from tempofield import kernels
+from tempofield.scenes import synthetic
 
 
 @pytest.fixture(scope="session", autouse=True)
 def _compiled_loops():
-    """Compile rhythmap's loops once before any test, so no timed or GUI test pays for it."""
-    _loops.warm_up()
+    """Compile tempofield's loops once before any test, so no timed or GUI test pays for it."""
+    kernels.warm_up()
 
 
 @pytest.fixture(scope="session")

@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from rhythmap import open_stack, samples
-from rhythmap.synthetic import Scene
+from tempofield import open_stack
+from tempofield.scenes import samples
+from tempofield.scenes.synthetic import Scene
 
-#: A small, fast set of options for runs in tests (names from rhythmap.options.OPTIONS).
+#: A small, fast set of options for runs in tests (names from tempofield.engine.options.OPTIONS).
 FAST_BAND = (30.0, 240.0)
 
 
@@ -28,7 +29,7 @@ def big_scene(reps: int = 3) -> Scene:
 
 def add_scene(viewer, scene: Scene, name="well sheet"):
     """Add a scene as an image layer the way the sample data contribution does."""
-    from rhythmap.plugin._sample_data import scene_layer_data
+    from tempofield.plugin._sample_data import scene_layer_data
 
     data, kwargs, _ = scene_layer_data(scene, name)[0]
     return viewer.add_image(data, **kwargs)
@@ -47,5 +48,5 @@ def run_panel(qtbot, panel, timeout_ms=60000):
 
 def result_layers(viewer, source):
     return [layer for layer in viewer.layers
-            if isinstance(layer.metadata.get("rhythmap"), dict)
-            and layer.metadata["rhythmap"].get("source_layer") == source]
+            if isinstance(layer.metadata.get("tempofield"), dict)
+            and layer.metadata["tempofield"].get("source_layer") == source]

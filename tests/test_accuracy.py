@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import rhythmap
-from rhythmap import synthetic
+import tempofield
+from tempofield.scenes import synthetic
 
 
 @pytest.mark.parametrize("waveform", ["sine", "calcium"])
@@ -23,7 +23,7 @@ def test_rate_error_with_noise_three_times_the_beat(waveform):
                              noise_sd=noise_sd, waveform=waveform, faint_patch=False, debris=0,
                              pacemaker=(20, 20), cluster_center=(48, 48), cluster_radius_px=8, bleach_tau_s=60,
                              dtype=np.float32, rng=11)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.04), (30, 150))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=0.04), (30, 150))
     for label, rate in s.truth["rate_by_region_bpm"].items():
         cycles = rate / 60 * 400 * 0.04
         assert cycles >= 10
@@ -36,7 +36,7 @@ def test_rate_error_with_noise_three_times_the_beat(waveform):
 
 def test_no_rhythm_on_pure_noise_with_bleaching_and_debris():
     s = synthetic.noise_scene((300, 64, 64), rng=5)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (30, 150))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (30, 150))
     assert np.isfinite(res.rate_bpm).mean() <= 0.01
 
 
@@ -54,7 +54,7 @@ def test_coverage_with_a_faint_patch_under_noise_twice_its_beat(rng):
     faint_amp = 1000 * 0.25 / 3 * _fundamental("calcium")
     s = synthetic.well_scene((400, 64, 64), pacemaker=(20, 20), cluster_center=(50, 50), cluster_radius_px=6,
                              noise_sd=2 * faint_amp, bleach_tau_s=60, debris=0, rng=rng)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (20, 150))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (20, 150))
     tissue = s.truth["regions"] > 0
     assert np.isfinite(res.rate_bpm[tissue]).mean() >= 0.9
     amp = s.truth["amplitude"]
@@ -70,11 +70,11 @@ def test_fainter_patch_found_with_wider_pooling():
     faint_peak = 1000 * 0.25 / 3
     s = synthetic.well_scene((400, 64, 64), pacemaker=(20, 20), cluster_center=(50, 50), cluster_radius_px=6,
                              noise_sd=2 * faint_peak, bleach_tau_s=60, debris=0, rng=3)
-    st = rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s)
+    st = tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s)
     amp = s.truth["amplitude"]
     faint = (s.truth["regions"] == 1) & (amp > 0) & (amp < 0.5 * np.nanmax(amp))
-    narrow = rhythmap.analyze(st, (20, 150), maps_only=True)
-    wide = rhythmap.analyze(st, (20, 150), maps_only=True, pooling_radius_px=2)
+    narrow = tempofield.analyze(st, (20, 150), maps_only=True)
+    wide = tempofield.analyze(st, (20, 150), maps_only=True, pooling_radius_px=2)
     assert np.isfinite(wide.rate_bpm[faint]).mean() >= 0.9
     assert np.isfinite(wide.rate_bpm[faint]).mean() > np.isfinite(narrow.rate_bpm[faint]).mean() + 0.2
     assert np.nanmedian(np.abs(wide.rate_bpm[faint] - 72.0)) < 0.5

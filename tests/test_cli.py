@@ -1,4 +1,4 @@
-"""The rhythmap command, run as a user would: real files, exit codes, no tracebacks."""
+"""The tempofield command, run as a user would: real files, exit codes, no tracebacks."""
 
 from __future__ import annotations
 
@@ -11,13 +11,14 @@ import numpy as np
 import pytest
 import tifffile
 
-from rhythmap import cli, samples
+from tempofield import cli
+from tempofield.scenes import samples
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 def run(*args, cwd=None):
-    return subprocess.run([sys.executable, "-m", "rhythmap.cli", *map(str, args)], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "tempofield.cli", *map(str, args)], capture_output=True, text=True,
                           cwd=cwd, timeout=300)
 
 
@@ -34,9 +35,9 @@ def test_analyze_writes_outputs_and_a_summary(tmp_path, sample_tif):
     for name in ("maps.ome.zarr", "run.json", "report.png", "regions.csv", "beats.csv"):
         assert (out / name).exists(), name
     truth = np.load(sample_tif.parent / "well_sheet_truth.npz")
-    import rhythmap
+    import tempofield
 
-    res = rhythmap.load_result(out)
+    res = tempofield.load_result(out)
     sheet = truth["regions"] == 1
     assert np.nanmedian(np.abs(res.rate_bpm[sheet] - truth["rate_bpm"][sheet])) < 0.5
     # one line per rhythm reference: loop score, beats, mean rate and beat-to-beat variability
@@ -58,9 +59,9 @@ def test_options_from_the_shared_table(tmp_path, sample_tif):
     p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150", "--pooling-radius-px", "0",
             "--false-alarm", "0.01", "--quiet")
     assert p.returncode == 0, p.stderr
-    import rhythmap
+    import tempofield
 
-    params = rhythmap.load_result(out).parameters
+    params = tempofield.load_result(out).parameters
     assert params["pooling_radius_px"] == 0 and params["false_alarm"] == 0.01
     assert params["phase_source"].startswith("kept spectra")
 
@@ -69,9 +70,9 @@ def test_an_option_on_by_default_has_a_flag_to_turn_it_off(tmp_path, sample_tif)
     out = tmp_path / "o3"
     p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150", "--no-phase-from-kept-spectra", "--quiet")
     assert p.returncode == 0, p.stderr
-    import rhythmap
+    import tempofield
 
-    params = rhythmap.load_result(out).parameters
+    params = tempofield.load_result(out).parameters
     assert params["phase_from_kept_spectra"] is False
     assert params["phase_source"] == "second read (phase_from_kept_spectra is off)"
     assert "phase from a second read (phase_from_kept_spectra is off)" in p.stdout
@@ -83,7 +84,7 @@ def test_an_option_on_by_default_has_a_flag_to_turn_it_off(tmp_path, sample_tif)
     (["analyze", "{sample}", "-o", "OUT", "--pooling-radius-px", "abc"], "pooling_radius_px"),
     (["analyze", "{nometa}", "-o", "OUT"], "--frame-interval"),
     (["analyze", "{sample}", "-o", "{existing}"], "already exists"),
-    (["analyze", "{sample}", "-o", "{existing}", "--overwrite"], "not a rhythmap result folder"),
+    (["analyze", "{sample}", "-o", "{existing}", "--overwrite"], "not a tempofield result folder"),
     (["analyze", "{sample}", "-o", "{sampledir}", "--overwrite"], "holds the input"),
     (["analyze", "{sample}", "-o", "/proc/no/such/place"], "Nothing was left half-written"),
 ])
@@ -153,10 +154,10 @@ def test_demo_in_a_clean_folder(tmp_path):
 def test_convert_then_analyze_gives_the_same_maps(tmp_path, sample_tif):
     z = tmp_path / "s.ome.zarr"
     assert cli.main(["convert", str(sample_tif), str(z)]) == 0
-    import rhythmap
+    import tempofield
 
-    a = rhythmap.open_stack(z)
-    b = rhythmap.open_stack(sample_tif)
+    a = tempofield.open_stack(z)
+    b = tempofield.open_stack(sample_tif)
     assert a.data.chunks[0] == (a.n_frames,)
     assert a.frame_interval_s == pytest.approx(b.frame_interval_s)
     assert a.pixel_size_um == pytest.approx(b.pixel_size_um, rel=1e-6)

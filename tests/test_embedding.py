@@ -1,4 +1,4 @@
-"""Tests of rhythmap.embedding: Gram-based sliding-window geometry.
+"""Tests of tempofield.kernels.embedding: Gram-based sliding-window geometry.
 
 External references: explicit embedding + scipy.spatial.distance.cdist (CHECKS,
 reference-library table), scikit-learn PCA, and CHECKS #2/#3 (Perea & Harer
@@ -10,7 +10,8 @@ import pytest
 from scipy.spatial.distance import cdist
 from sklearn.decomposition import PCA
 
-from rhythmap.embedding import (
+from tempofield.errors import InputError
+from tempofield.kernels.embedding import (
     WindowChoice,
     motion_modes,
     sliding_window_points,
@@ -18,7 +19,6 @@ from rhythmap.embedding import (
     window_for_period,
     window_pca,
 )
-from rhythmap.errors import InputError
 
 
 def _video(T=70, P=12, seed=0):

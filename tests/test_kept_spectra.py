@@ -18,20 +18,23 @@ import numpy as np
 import pytest
 import scipy.fft
 
-import rhythmap
-from rhythmap import engine, phase as phase_mod, preprocess, spectral, synthetic
+import tempofield
+from tempofield.engine import kept, processes, run, stages, tile_kernels, tiles
+from tempofield.kernels import phase as phase_mod
+from tempofield.kernels import preprocess, spectral
+from tempofield.scenes import synthetic
 
 
 @pytest.fixture(scope="module")
 def wave():
     s = synthetic.plane_wave_scene((300, 40, 44), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
                                    speed_um_s=6000.0, direction_deg=30.0, noise_sd=20.0, rng=5)
-    return rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0)
+    return tempofield.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0)
 
 
 @pytest.fixture(scope="module")
 def second_read(wave):
-    return rhythmap.analyze(wave, (40, 200), phase_from_kept_spectra=False)
+    return tempofield.analyze(wave, (40, 200), phase_from_kept_spectra=False)
 
 
 def _circ_diff(a, b):
@@ -39,7 +42,7 @@ def _circ_diff(a, b):
 
 
 def test_kept_spectra_give_the_phase_of_a_second_read(wave, second_read):
-    kept = rhythmap.analyze(wave, (40, 200))
+    kept = tempofield.analyze(wave, (40, 200))
     assert kept.parameters["phase_source"].startswith("kept spectra")
     assert second_read.parameters["phase_source"].startswith("second read")
     ok = np.isfinite(second_read.phase_rad)
@@ -54,7 +57,7 @@ def test_kept_spectra_give_the_phase_of_a_second_read(wave, second_read):
 def test_kept_spectra_of_tiles_cut_into_many_bands(wave, second_read, monkeypatch):
     """Each band of rows of a tile writes its own columns of the tile's kept block."""
     monkeypatch.setattr(spectral, "FFT_BLOCK_COLUMNS", 30)  # a band of one row (tiles are ~20 x 22 here)
-    kept = rhythmap.analyze(wave, (40, 200))
+    kept = tempofield.analyze(wave, (40, 200))
     ok = np.isfinite(second_read.phase_rad)
     np.testing.assert_array_equal(np.isfinite(kept.phase_rad), ok)
     assert np.max(_circ_diff(kept.phase_rad[ok], second_read.phase_rad[ok])) < 1e-3
@@ -98,7 +101,7 @@ def test_the_maps_kernel_keeps_the_detrended_spectrum(rng):
 
 def test_a_leaking_reference_reads_the_stack_again(wave, second_read, monkeypatch):
     monkeypatch.setattr(phase_mod, "MAX_BAND_LEAK", -1.0)
-    res = rhythmap.analyze(wave, (40, 200))
+    res = tempofield.analyze(wave, (40, 200))
     assert res.parameters["phase_source"].startswith("second read")
     assert "leave the kept band" in res.parameters["phase_source"]
     np.testing.assert_array_equal(res.phase_rad, second_read.phase_rad)
@@ -107,7 +110,7 @@ def test_a_leaking_reference_reads_the_stack_again(wave, second_read, monkeypatc
 
 def test_no_room_for_the_kept_spectra_reads_the_stack_again(wave, second_read, monkeypatch):
     monkeypatch.setattr(shutil, "disk_usage", lambda path: shutil._ntuple_diskusage(1, 1, 0))
-    res = rhythmap.analyze(wave, (40, 200))
+    res = tempofield.analyze(wave, (40, 200))
     assert "would not fit" in res.parameters["phase_source"]
     np.testing.assert_array_equal(res.phase_rad, second_read.phase_rad)
 
@@ -115,14 +118,14 @@ def test_no_room_for_the_kept_spectra_reads_the_stack_again(wave, second_read, m
 def test_kept_spectra_are_removed_after_a_run_and_after_a_stop(wave, tmp_path):
     with dask.config.set({"temporary-directory": str(tmp_path)}):
         seen = []
-        gen = engine.iter_analyze(wave, (40, 200))
+        gen = run.iter_analyze(wave, (40, 200))
         for tick in gen:
             if tick.stage == "references":
-                seen = [p for p in tmp_path.iterdir() if p.name.startswith("rhythmap-spectra-")]
+                seen = [p for p in tmp_path.iterdir() if p.name.startswith("tempofield-spectra-")]
                 sizes = [f.stat().st_size for p in seen for f in Path(p).iterdir()]
         assert len(seen) == 1 and sizes and sizes[0] > 0  # the pass really wrote them there
         assert list(tmp_path.iterdir()) == []
-        gen = engine.iter_analyze(wave, (40, 200))
+        gen = run.iter_analyze(wave, (40, 200))
         for tick in gen:
             if tick.stage == "phase":
                 gen.close()  # a front end stopping the run
@@ -143,9 +146,9 @@ def test_workers_on_other_machines_read_the_stack_again(tmp_path):
             return {f"tcp://{h}:{9000 + i}": 1 for i, h in enumerate(self.hosts)}
 
     with dask.config.set({"temporary-directory": str(tmp_path)}), contextlib.ExitStack() as cleanup:
-        keep, why = engine._keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["10.1.2.3", "127.0.0.1"]))
+        keep, why = kept.keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["10.1.2.3", "127.0.0.1"]))
         assert keep is None and "not all on this machine" in why
-        keep, why = engine._keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["127.0.0.1"]))
+        keep, why = kept.keep_spectra((100, 10, 10), (0, 8), cleanup, Remote(["127.0.0.1"]))
         assert keep is not None and why == ""
         assert keep.bytes_per_pixel == 2 * 8 * 2 + 4  # 16-bit real and imaginary parts, a float32 scale
         assert os.path.getsize(keep.path) == keep.bytes_per_pixel * 100  # reserved at once
@@ -156,7 +159,7 @@ def test_kept_blocks_round_trip_within_half_a_step(tmp_path, rng):
     """Each pixel is stored as 16-bit integers under its own scale: every value comes back within
     half a step (1/65534 of the pixel's largest value), whatever the pixel's magnitude, bands and tiles apart."""
     n_bins, ty, tx, width = 12, 6, 5, 10
-    keep = engine.KeptSpectra(str(tmp_path / "k.bin"), (3, 3 + n_bins), width, band_columns=2 * tx)
+    keep = kept.KeptSpectra(str(tmp_path / "k.bin"), (3, 3 + n_bins), width, band_columns=2 * tx)
     (tmp_path / "k.bin").write_bytes(b"\0" * keep.bytes_per_pixel * ty * width)
     magnitude = 10.0 ** rng.uniform(-3, 8, ty * width)  # pixels of very different brightness
     want = {}
@@ -184,20 +187,20 @@ def test_coherence_of_noise_stays_low_with_smooth_segments(rng):
     theta = 2 * np.pi * 20 * np.arange(t) / t
     _, coh, _ = phase_mod.lockin(rng.normal(0, 1, (t, 4000)), phase_mod.lockin_basis(theta))
     assert 0.18 < coh.mean() < 0.28
-    assert (coh >= engine.COHERENT).mean() < 0.04
+    assert (coh >= stages.COHERENT).mean() < 0.04
     locked = np.cos(theta[:, None] - rng.uniform(0, 6, 200)) + rng.normal(0, 0.3, (t, 200))
     assert np.median(phase_mod.lockin(locked, phase_mod.lockin_basis(theta))[1]) > 0.95
 
 
 def test_compiled_resultant_equals_the_numpy_formula(rng):
     """Coherence = |sum_k z_k / |z_k|| / K (Mardia & Jupp 2000), segments with z_k = 0 counting as nothing."""
-    from rhythmap import _loops
+    from tempofield.kernels import _phase_loops
 
     proj = rng.normal(0, 1, (2 + 2 * 9, 500)).astype(np.float32)
     proj[2:4, :7] = 0.0
     proj[2:, 7] = np.tile([1.0, -1.0], 9)  # every segment at the same phase: 1
     got = np.empty(500, np.float32)
-    _loops.segment_resultant(proj, got)
+    _phase_loops.segment_resultant(proj, got)
     re, im = proj[2::2].astype(float), -proj[3::2].astype(float)
     mag = np.hypot(re, im)
     safe = np.where(mag > 0, mag, 1.0)

@@ -1,10 +1,10 @@
 """The plugin's reader and writer: result folders and stacks.
 
 Round trip: result layers (as the analysis panel makes them) -> writer ->
-folder -> rhythmap.load_result and the reader -> the same maps. The writer
+folder -> tempofield.load_result and the reader -> the same maps. The writer
 never replaces an existing folder and leaves no partial folder. The stack
-reader keeps the frame interval found by rhythmap.open_stack (tifffile
-ImageJ metadata written by rhythmap.samples).
+reader keeps the frame interval found by tempofield.open_stack (tifffile
+ImageJ metadata written by tempofield.scenes.samples).
 """
 
 from __future__ import annotations
@@ -15,19 +15,19 @@ import numpy as np
 import pytest
 import tifffile
 
-import rhythmap
-from rhythmap import samples
-from rhythmap.errors import ResultExistsError
-from rhythmap.plugin import _reader, _writer
-from rhythmap.plugin._layers import result_from_layers, result_layer_data
+import tempofield
+from tempofield.errors import ResultExistsError
+from tempofield.plugin import _reader, _writer
+from tempofield.plugin._layers import result_from_layers, result_layer_data
+from tempofield.scenes import samples
 
 
 @pytest.fixture(scope="module")
 def result(tmp_path_factory):
-    s = rhythmap.synthetic.well_scene((200, 40, 40), frame_interval_s=0.04, pixel_size_um=4.0,
+    s = tempofield.scenes.synthetic.well_scene((200, 40, 40), frame_interval_s=0.04, pixel_size_um=4.0,
                                       pacemaker=(10.0, 10.0), cluster_center=(30.0, 30.0),
                                       cluster_radius_px=5.0, rng=11)
-    return rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), (30, 240))
+    return tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), (30, 240))
 
 
 def _as_writer_input(layer_data):
@@ -40,7 +40,7 @@ def test_writer_then_reader_round_trip(result, tmp_path):
     out = tmp_path / "saved"
     paths = _writer.write_result(str(out), _as_writer_input(layers))
     assert paths == [str(out)]
-    back = rhythmap.load_result(out)
+    back = tempofield.load_result(out)
     for name in ("rate_bpm", "periodicity", "phase_rad", "delay_s", "period_s", "amplitude", "coherence"):
         np.testing.assert_array_equal(getattr(back, name), getattr(result, name), err_msg=name)
     np.testing.assert_array_equal(back.regions, result.regions)
@@ -53,10 +53,10 @@ def test_writer_then_reader_round_trip(result, tmp_path):
     rate = read["saved · rate (bpm)"]
     np.testing.assert_array_equal(rate[0], result.rate_bpm)
     assert rate[1]["colormap"] == "turbo" and rate[1]["scale"] == (4.0, 4.0)
-    assert rate[1]["metadata"]["rhythmap"]["unit"] == "1/minute"
+    assert rate[1]["metadata"]["tempofield"]["unit"] == "1/minute"
     phase = read["saved · phase (rad)"]
     assert phase[1]["colormap"] == "twilight" and phase[1]["contrast_limits"] == (0.0, 2 * math.pi)
-    assert phase[1]["metadata"]["rhythmap"]["unit"] == "radian"
+    assert phase[1]["metadata"]["tempofield"]["unit"] == "radian"
     assert read["saved · regions"][2] == "labels"
     # read layers can be written again, and carry the whole result (tables, references)
     again = result_from_layers(_as_writer_input(read.values()))
@@ -68,10 +68,10 @@ def test_writer_keeps_edited_labels_and_fills_missing_maps(result, tmp_path):
     edited = np.zeros_like(data)
     edited[:5, :5] = 7
     # a regions layer alone, without the result object: the other maps are written as NaN
-    info = dict(attrs["metadata"]["rhythmap"])
-    only = [(edited, {**attrs, "metadata": {"rhythmap": info}}, "labels")]
+    info = dict(attrs["metadata"]["tempofield"])
+    only = [(edited, {**attrs, "metadata": {"tempofield": info}}, "labels")]
     out = _writer.write_result(str(tmp_path / "labels_only"), only)[0]
-    back = rhythmap.load_result(out)
+    back = tempofield.load_result(out)
     np.testing.assert_array_equal(back.regions, edited)
     assert np.isnan(back.rate_bpm).all()
     assert back.frame_interval_s == result.frame_interval_s
@@ -114,9 +114,9 @@ def test_save_and_open_through_the_viewer(make_napari_viewer, result, tmp_path):
         getattr(viewer, f"add_{kind}")(data, **attrs)
     viewer.layers.selection = set(viewer.layers)
     out = tmp_path / "from_viewer"
-    saved = viewer.layers.save(str(out), selected=True, plugin="rhythmap")
-    assert saved == [str(out)] and rhythmap.result.is_complete(out)
-    viewer.open(str(out), plugin="rhythmap")
+    saved = viewer.layers.save(str(out), selected=True, plugin="tempofield")
+    assert saved == [str(out)] and tempofield.outputs.result.is_complete(out)
+    viewer.open(str(out), plugin="tempofield")
     rate = viewer.layers["from_viewer · rate (bpm)"]
     np.testing.assert_array_equal(rate.data, result.rate_bpm)
     assert rate.colormap.name == "turbo"

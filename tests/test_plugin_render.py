@@ -2,14 +2,13 @@
 
 Rendered by napari's vispy canvas under Xvfb + Mesa (``viewer.screenshot``).
 The tissue's place on screen is found by rendering the scene's own truth mask
-(rhythmap.synthetic) alone, so the test does not depend on the canvas size.
+(tempofield.scenes.synthetic) alone, so the test does not depend on the canvas size.
 """
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from conftest_gui import add_scene, run_panel, small_scene
 
 pytestmark = pytest.mark.gui
@@ -21,7 +20,7 @@ def _only(viewer, *visible):
 
 
 def test_overlays_change_the_picture_inside_the_tissue(make_napari_viewer, qtbot):
-    from rhythmap.plugin._widget import AnalysisPanel
+    from tempofield.plugin._widget import AnalysisPanel
 
     viewer = make_napari_viewer(show=True)
     viewer.window.resize(900, 700)

@@ -1,6 +1,6 @@
-"""Sample data contributions: rhythmap's synthetic scenes with their physical scale.
+"""Sample data contributions: tempofield's synthetic scenes with their physical scale.
 
-The reference is rhythmap.samples / rhythmap.synthetic (the same scenes, same seed).
+The reference is tempofield.scenes.samples / tempofield.scenes.synthetic (the same scenes, same seed).
 """
 
 from __future__ import annotations
@@ -8,8 +8,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from rhythmap import samples
-from rhythmap.plugin import _sample_data
+from tempofield.plugin import _sample_data
+from tempofield.scenes import samples
 
 
 @pytest.mark.parametrize("fn, scene", [(_sample_data.well_sheet, samples.well_sheet),
@@ -32,7 +32,7 @@ def test_noise_sample_has_no_rhythm_truth():
 @pytest.mark.gui
 def test_open_sample_in_a_viewer(make_napari_viewer):
     viewer = make_napari_viewer()
-    viewer.open_sample("rhythmap", "well_sheet")
+    viewer.open_sample("tempofield", "well_sheet")
     layer = viewer.layers["well sheet"]
     ref = samples.well_sheet()
     np.testing.assert_allclose(layer.scale, (ref.frame_interval_s, ref.pixel_size_um, ref.pixel_size_um))

@@ -1,8 +1,8 @@
 """The analysis panel and the region inspector in a real napari viewer (Xvfb + Mesa).
 
-Checks: the panel's fields come from rhythmap.options.OPTIONS and the layer's
+Checks: the panel's fields come from tempofield.engine.options.OPTIONS and the layer's
 metadata; a run adds the named, scaled, coloured layers whose numbers equal
-rhythmap.analyze on the same input; a rerun replaces them; the event loop keeps
+tempofield.analyze on the same input; a rerun replaces them; the event loop keeps
 running during a run; Cancel stops the run and adds nothing; a velocity field
 becomes a Vectors layer; a (T, C, Y, X) layer is analysed on the chosen channel;
 the inspector shows a region picked by a click and exports its row and figures.
@@ -17,20 +17,27 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
+from conftest_gui import (
+    FAST_BAND,
+    add_scene,
+    big_scene,
+    engine_stack,
+    result_layers,
+    run_panel,
+    small_scene,
+)
 from qtpy.QtCore import QTimer
 
-import rhythmap
-from rhythmap.options import OPTIONS
-from rhythmap.reference import reference_from_theta
-
-from conftest_gui import FAST_BAND, add_scene, big_scene, engine_stack, result_layers, run_panel, small_scene
+import tempofield
+from tempofield.engine.options import OPTIONS
+from tempofield.kernels.reference import reference_from_theta
 
 pytestmark = pytest.mark.gui
 
 
 @pytest.fixture
 def panel(make_napari_viewer):
-    from rhythmap.plugin._widget import AnalysisPanel
+    from tempofield.plugin._widget import AnalysisPanel
 
     viewer = make_napari_viewer()
     widget = AnalysisPanel(viewer)
@@ -45,7 +52,7 @@ def scene():
 
 def test_fields_come_from_the_option_table_and_the_layer(panel, scene):
     assert list(panel.option_widgets) == [o.name for o in OPTIONS]
-    from rhythmap.plugin._widget import GUI_DEFAULTS
+    from tempofield.plugin._widget import GUI_DEFAULTS
 
     assert panel.options() == {o.name: GUI_DEFAULTS.get(o.name, o.default) for o in OPTIONS}
     add_scene(panel.viewer, scene)
@@ -53,7 +60,7 @@ def test_fields_come_from_the_option_table_and_the_layer(panel, scene):
     assert panel.frame_interval.value() == pytest.approx(scene.frame_interval_s)
     assert panel.pixel_size.value() == pytest.approx(scene.pixel_size_um)
     assert not panel.channel_spin.isEnabled()
-    from rhythmap.presets import SPECIMENS
+    from tempofield.engine.presets import SPECIMENS
 
     panel.preset_box.setCurrentText("zebrafish-heart-28c")
     assert (panel.rate_lo.value(), panel.rate_hi.value()) == SPECIMENS["zebrafish-heart-28c"].rate_range_bpm
@@ -81,7 +88,7 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
     panel.set_options(pooling_radius_px=2)
     run_panel(qtbot, panel)
     layers = {layer.name: layer for layer in result_layers(viewer, "well sheet")}
-    expected = rhythmap.analyze(engine_stack(scene), FAST_BAND, pooling_radius_px=2)
+    expected = tempofield.analyze(engine_stack(scene), FAST_BAND, pooling_radius_px=2)
     titles = ["rate (bpm)", "periodicity", "phase (rad)", "activation delay (s)", "regions"]
     if "velocity_x_um_s" in expected.extra_maps:  # once the engine measures conduction velocity
         titles.append("conduction velocity")
@@ -96,8 +103,8 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
     for layer in layers.values():
         np.testing.assert_allclose(layer.scale, raw.scale[-2:])
         np.testing.assert_allclose(layer.translate, raw.translate[-2:])
-        info = layer.metadata["rhythmap"]
-        assert info["version"] == rhythmap.__version__
+        info = layer.metadata["tempofield"]
+        assert info["version"] == tempofield.__version__
         assert info["parameters"]["pooling_radius_px"] == 2
         assert info["parameters"]["rate_range_bpm"] == list(FAST_BAND)
     assert rate.colormap.name == "turbo" and phase.colormap.name == "twilight"
@@ -172,7 +179,7 @@ def test_velocity_field_becomes_a_vectors_layer(panel, scene, qtbot):
     vy = np.full((y, x), 3000.0, np.float32)
     vx = np.full((y, x), 4000.0, np.float32)
     vy[:10] = np.nan
-    result = rhythmap.RhythmResult(
+    result = tempofield.RhythmResult(
         rate_bpm=np.full((y, x), 72.0, np.float32), period_s=nan, amplitude=nan, periodicity=nan,
         coherence=nan, phase_rad=nan, delay_s=nan, regions=np.ones((y, x), np.int32),
         frame_interval_s=scene.frame_interval_s, pixel_size_um=scene.pixel_size_um,
@@ -205,15 +212,15 @@ def test_channel_of_a_tcyx_layer(panel, scene, qtbot):
     panel.channel_spin.setValue(1)
     run_panel(qtbot, panel)
     rate = panel.viewer.layers["two channels · rate (bpm)"]
-    expected = rhythmap.analyze(rhythmap.open_stack(tcyx, frame_interval_s=fi, axes="TCYX", channel=1),
+    expected = tempofield.analyze(tempofield.open_stack(tcyx, frame_interval_s=fi, axes="TCYX", channel=1),
                                 panel.rate_range_bpm())
     np.testing.assert_array_equal(rate.data, expected.rate_bpm)
     np.testing.assert_allclose(rate.scale, (ps, ps))
-    assert rate.metadata["rhythmap"]["channel"] == 1
+    assert rate.metadata["tempofield"]["channel"] == 1
 
 
 def test_inspector_shows_a_clicked_region_and_exports(panel, scene, qtbot, tmp_path):
-    from rhythmap.plugin._inspector import RegionInspector
+    from tempofield.plugin._inspector import RegionInspector
 
     viewer = panel.viewer
     add_scene(viewer, scene)
@@ -223,7 +230,7 @@ def test_inspector_shows_a_clicked_region_and_exports(panel, scene, qtbot, tmp_p
     regions = viewer.layers["well sheet · regions"]
     assert inspector.result_box.currentText() == regions.name
     # a hand-made reference and table row (the topology/regions work fills these in later)
-    result = regions.metadata["rhythmap_result"]
+    result = regions.metadata["tempofield_result"]
     t = np.arange(200) * 0.05
     result.references = {1: reference_from_theta(t, 2 * np.pi * 1.2 * t, diagram=np.array([[0.1, 0.9], [0.2, 0.25]]),
                                                  score=0.8)}

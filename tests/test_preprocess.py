@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import scipy.ndimage
 
-from rhythmap import preprocess
+from tempofield.kernels import preprocess
 
 
 def test_box_pool_equals_scipy_uniform_filter_interior(rng):

@@ -1,4 +1,4 @@
-"""Tests of rhythmap.reference: phase -> beats, instantaneous rate, variability.
+"""Tests of tempofield.kernels.reference: phase -> beats, instantaneous rate, variability.
 
 Ground truth is set by construction (synthetic phases with a known, drifting
 rate; CHECKS: "synthetic scenes with known ground truth are fine for accuracy
@@ -10,9 +10,13 @@ import json
 import numpy as np
 import pytest
 
-from rhythmap.embedding import sliding_window_sqdist, window_for_period
-from rhythmap.errors import InputError
-from rhythmap.reference import RhythmReference, reference_from_distances, reference_from_theta
+from tempofield.errors import InputError
+from tempofield.kernels.embedding import sliding_window_sqdist, window_for_period
+from tempofield.kernels.reference import (
+    RhythmReference,
+    reference_from_distances,
+    reference_from_theta,
+)
 
 DT = 0.02  # s per frame
 F0 = 2.0  # Hz

@@ -5,15 +5,16 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import rhythmap
-from rhythmap import propagation, regions, synthetic
+import tempofield
+from tempofield.kernels import propagation, regions
+from tempofield.scenes import synthetic
 
 
 @pytest.fixture(scope="module")
 def two_clusters():
     s = synthetic.well_scene((300, 96, 96), frame_interval_s=0.04, pixel_size_um=4.0, speed_um_s=1500.0,
                              pacemaker=(30.0, 28.0), cluster_center=(70.0, 70.0), cluster_radius_px=11.0, rng=3)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
     return s, res
 
 
@@ -49,7 +50,7 @@ def test_plane_wave_speed_and_direction_by_both_routes(seed):
     5 % of the true speed and 5 degrees of the true direction."""
     s = synthetic.plane_wave_scene((300, 48, 48), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
                                    speed_um_s=6000.0, direction_deg=30.0, noise_sd=10.0, rng=seed)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
     row = res.region_table.iloc[0]
     assert row.conduction_velocity_um_s == pytest.approx(6000.0, rel=0.05)
     assert row.wave_direction_deg == pytest.approx(30.0, abs=5)
@@ -67,7 +68,7 @@ def test_plane_wave_speed_and_direction_by_both_routes(seed):
 
 def test_pure_noise_with_bleaching_and_debris_has_no_region():
     s = synthetic.noise_scene((300, 64, 64), debris=8, rng=9)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (20, 150))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (20, 150))
     assert (res.regions > 0).mean() <= 0.01
     assert len(res.region_table) == res.regions.max()
 
@@ -188,14 +189,14 @@ def _components_by_scipy(rate, ok, tol):
 
 
 def test_rate_components_equal_scipy_connected_components(rng):
-    from rhythmap import _loops
+    from tempofield.kernels import _regions_loops
 
     rate = np.round(rng.uniform(60, 66, (90, 120)), 0)  # plateaus of equal rate that touch and split
     rate[20:50, 30:90] = 90.0
     ok = rng.random((90, 120)) < 0.8
     tol = regions.rate_tolerance_bpm(np.where(ok, rate, 0.0), 1.0)
     got = np.empty(ok.shape, np.int64)
-    _loops.rate_components(rate, ok, tol, got)
+    _regions_loops.rate_components(rate, ok, tol, got)
     want = _components_by_scipy(rate, ok, tol)
     # Same partition, same order (by each component's first pixel); scipy also numbers the
     # pixels left out, so compare ranks.

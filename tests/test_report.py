@@ -7,16 +7,18 @@ import pandas as pd
 import pytest
 from PIL import Image
 
-import rhythmap
-from rhythmap import magnify, presets, synthetic
-from rhythmap.report import render_report
+import tempofield
+from tempofield.engine import presets
+from tempofield.kernels import magnify
+from tempofield.outputs.report import render_report
+from tempofield.scenes import synthetic
 
 
 @pytest.fixture(scope="module")
 def saved(tmp_path_factory, well):
-    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
-    res = rhythmap.analyze(st, (20, 150), magnified_preview=True)
-    from rhythmap.report import preview_writer, report_writers
+    st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    res = tempofield.analyze(st, (20, 150), magnified_preview=True)
+    from tempofield.outputs.report import preview_writer, report_writers
 
     out = tmp_path_factory.mktemp("rep") / "res"
     res.save(out, extra_files={**report_writers(res, st), **preview_writer(res, st)})
@@ -48,8 +50,8 @@ def test_csvs_parse_and_carry_units(saved):
 
 def test_report_for_a_field_without_rhythm(tmp_path):
     s = synthetic.noise_scene((300, 32, 32), rng=1)
-    st = rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s)
-    res = rhythmap.analyze(st, (20, 150))
+    st = tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s)
+    res = tempofield.analyze(st, (20, 150))
     assert render_report(res, tmp_path / "r.png", st).stat().st_size > 10_000
 
 
@@ -76,17 +78,17 @@ def test_magnified_preview_amplifies_the_band_only(saved):
 def test_specimen_preset_sets_band_and_warns():
     s = synthetic.well_scene((500, 40, 40), pacemaker=(10, 10), cluster_center=(30, 30), cluster_radius_px=5,
                              rng=8)
-    st = rhythmap.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0)
-    res = rhythmap.analyze(st, None, specimen="hpsc-cardiomyocytes")
+    st = tempofield.open_stack(s.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    res = tempofield.analyze(st, None, specimen="hpsc-cardiomyocytes")
     warned = res.parameters["warnings"]
     assert not [w for w in warned if " bpm is outside" in w]  # 72 and 42 bpm are plausible here
     # the synthetic wave (2000 um/s = 0.2 cm/s) is slower than such sheets conduct: flagged
     assert any("conduction velocity" in w and "Lee et al. 2012" in w for w in warned)
     assert res.parameters["rate_range_bpm"] == list(presets.SPECIMENS["hpsc-cardiomyocytes"].rate_range_bpm)
     # 72 and 42 bpm are plausible for these cells; for a zebrafish heart they are not, and 25 fps is too slow
-    res = rhythmap.analyze(st, (20, 150), specimen="zebrafish-heart-28c")
+    res = tempofield.analyze(st, (20, 150), specimen="zebrafish-heart-28c")
     text = " ".join(res.parameters["warnings"])
     assert "outside the plausible 120-225 bpm" in text and "Barrionuevo" in text
     assert "frame rate" in text or res.frame_interval_s < 60 / 2 / 225
-    with pytest.raises(rhythmap.errors.InputError, match="known presets"):
+    with pytest.raises(tempofield.errors.InputError, match="known presets"):
         presets.get_specimen("frog")

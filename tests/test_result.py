@@ -7,28 +7,28 @@ import json
 import numpy as np
 import pytest
 
-import rhythmap
-from rhythmap.errors import ResultExistsError
-from rhythmap.result import MAP_NAMES, is_complete
+import tempofield
+from tempofield.errors import ResultExistsError
+from tempofield.outputs.result import MAP_NAMES, is_complete
 
 
 @pytest.fixture(scope="module")
 def result(well):
-    st = rhythmap.open_stack(well.frames, frame_interval_s=well.frame_interval_s, pixel_size_um=well.pixel_size_um)
-    return rhythmap.analyze(st, (20, 150))
+    st = tempofield.open_stack(well.frames, frame_interval_s=well.frame_interval_s, pixel_size_um=well.pixel_size_um)
+    return tempofield.analyze(st, (20, 150))
 
 
 def test_save_and_load_round_trip(tmp_path, result):
     out = result.save(tmp_path / "res")
     for name in ("maps.ome.zarr", "run.json", "regions.csv", "beats.csv"):
         assert (out / name).exists()
-    back = rhythmap.load_result(out)
+    back = tempofield.load_result(out)
     for name in MAP_NAMES:
         np.testing.assert_array_equal(getattr(back, name), getattr(result, name), err_msg=name)
     assert back.frame_interval_s == result.frame_interval_s
     assert back.parameters["rate_range_bpm"] == [20.0, 150.0]
     run = json.loads((out / "run.json").read_text())
-    assert run["version"] == rhythmap.__version__
+    assert run["version"] == tempofield.__version__
     assert run["input"]["identity"]["shape"] == list(result.input["shape"])
     assert "maps_pass_s" in run["timings"]
 
@@ -59,7 +59,7 @@ def test_existing_result_is_never_overwritten_silently(tmp_path, result):
         result.save(out)
     assert (out / "keep.txt").read_text() == "mine"
     # --overwrite replaces an earlier result, never a folder of the user's
-    with pytest.raises(ResultExistsError, match="not a rhythmap result folder"):
+    with pytest.raises(ResultExistsError, match="not a tempofield result folder"):
         result.save(out, overwrite=True)
     assert (out / "keep.txt").read_text() == "mine"
     earlier = tmp_path / "earlier"
@@ -76,8 +76,8 @@ def test_output_folder_holding_the_input_is_refused(tmp_path, well):
     data = tmp_path / "data"
     data.mkdir()
     tifffile.imwrite(data / "s.tif", well.frames, imagej=True, metadata={"axes": "TYX", "finterval": 0.04})
-    st = rhythmap.open_stack(data / "s.tif")
-    res = rhythmap.analyze(st, (20, 150), maps_only=True)
+    st = tempofield.open_stack(data / "s.tif")
+    res = tempofield.analyze(st, (20, 150), maps_only=True)
     with pytest.raises(ResultExistsError, match="holds the input"):
         res.save(data, overwrite=True)
     assert (data / "s.tif").exists()
@@ -96,5 +96,5 @@ def test_a_failed_write_leaves_nothing_behind(tmp_path, result):
 def test_a_folder_without_run_json_is_not_a_result(tmp_path):
     (tmp_path / "half").mkdir()
     assert not is_complete(tmp_path / "half")
-    with pytest.raises(rhythmap.errors.InputError, match="not a complete"):
-        rhythmap.load_result(tmp_path / "half")
+    with pytest.raises(tempofield.errors.InputError, match="not a complete"):
+        tempofield.load_result(tmp_path / "half")

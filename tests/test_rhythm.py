@@ -1,6 +1,6 @@
 """The rhythm reference and per-pixel phase inside analyze(): drifting rates, waves, caps, decimation.
 
-Truth is set by construction in rhythmap.synthetic. A beat is counted at the
+Truth is set by construction in tempofield.scenes.synthetic. A beat is counted at the
 moment the rhythm's fundamental peaks at the region's earliest pixels, so the
 truth's beat times are shifted by the waveform's fundamental phase.
 """
@@ -10,8 +10,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import rhythmap
-from rhythmap import synthetic
+import tempofield
+from tempofield.scenes import synthetic
 
 
 def _fundamental_offset_cycles(waveform):
@@ -31,7 +31,7 @@ def ramp():
     s = synthetic.well_scene((500, 40, 40), frame_interval_s=0.03, pixel_size_um=4.0, rate_bpm=90.0,
                              rate_ramp=0.4, speed_um_s=1e9, pacemaker=(20, 20), cluster_radius_px=0,
                              faint_patch=False, debris=0, waveform="sine", noise_sd=20, rng=4)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (40, 200))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=s.frame_interval_s), (40, 200))
     return s, res
 
 
@@ -72,7 +72,7 @@ def test_plane_wave_activation_delay_and_coherence(speed_um_s):
     """
     s = synthetic.plane_wave_scene((300, 48, 48), frame_interval_s=0.02, pixel_size_um=5.0, rate_bpm=90.0,
                                    speed_um_s=speed_um_s, direction_deg=30.0, noise_sd=20.0, rng=2)
-    res = rhythmap.analyze(rhythmap.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
+    res = tempofield.analyze(tempofield.open_stack(s.frames, frame_interval_s=0.02, pixel_size_um=5.0), (40, 200))
     period = 60 / 90.0
     assert res.regions.max() == 1
     truth = s.truth["delay_s"]
@@ -91,7 +91,7 @@ def test_plane_wave_activation_delay_and_coherence(speed_um_s):
 
 
 def test_coherence_high_on_tissue_low_off_it(well):
-    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    res = tempofield.analyze(tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
     on = well.truth["regions"] > 0
     far = ~np.asarray(__import__("scipy.ndimage", fromlist=["x"]).binary_dilation(on, iterations=3))
     assert np.nanmedian(res.coherence[on]) > 0.9
@@ -103,9 +103,9 @@ def test_coherence_high_on_tissue_low_off_it(well):
 
 def test_pixel_cap_of_the_gram_does_not_change_the_rhythm(well):
     """DESIGN.md cost note: binning the Gram pixels under a cap keeps persistence and theta(t)."""
-    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
-    full = rhythmap.analyze(st, (20, 150), gram_max_pixels=10**6)
-    capped = rhythmap.analyze(st, (20, 150), gram_max_pixels=150)
+    st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    full = tempofield.analyze(st, (20, 150), gram_max_pixels=10**6)
+    capped = tempofield.analyze(st, (20, 150), gram_max_pixels=150)
     assert capped.parameters["gram_bin_px"] > 1 == full.parameters["gram_bin_px"]
     a, b = full.references[1], capped.references[1]
     assert b.score == pytest.approx(a.score, abs=0.05)
@@ -114,9 +114,9 @@ def test_pixel_cap_of_the_gram_does_not_change_the_rhythm(well):
 
 
 def test_decimated_topology_for_long_records_gives_the_same_beats(well):
-    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
-    full = rhythmap.analyze(st, (20, 150))
-    dec = rhythmap.analyze(st, (20, 150), max_frames_topology=100)
+    st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    full = tempofield.analyze(st, (20, 150))
+    dec = tempofield.analyze(st, (20, 150), max_frames_topology=100)
     a, b = full.references[1], dec.references[1]
     assert len(a.beat_times_s) == len(b.beat_times_s)
     np.testing.assert_allclose(b.beat_times_s, a.beat_times_s, atol=1.5 * 0.04)
@@ -124,8 +124,8 @@ def test_decimated_topology_for_long_records_gives_the_same_beats(well):
 
 
 def test_references_saved_and_loaded(tmp_path, well):
-    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
-    back = rhythmap.load_result(res.save(tmp_path / "r"))
+    res = tempofield.analyze(tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
+    back = tempofield.load_result(res.save(tmp_path / "r"))
     assert set(back.references) == set(res.references)
     np.testing.assert_allclose(back.references[1].beat_times_s, res.references[1].beat_times_s)
     np.testing.assert_allclose(back.references[1].diagram, res.references[1].diagram)
@@ -137,16 +137,16 @@ def test_references_saved_and_loaded(tmp_path, well):
 
 
 def test_maps_only_skips_the_second_pass(well):
-    res = rhythmap.analyze(rhythmap.open_stack(well.frames, frame_interval_s=0.04), (20, 150), maps_only=True)
+    res = tempofield.analyze(tempofield.open_stack(well.frames, frame_interval_s=0.04), (20, 150), maps_only=True)
     assert res.references == {} and np.all(np.isnan(res.phase_rad))
     assert "phase_pass_s" not in res.timings and np.isfinite(res.rate_bpm).any()
 
 
 def test_worker_processes_give_the_same_references_and_a_tile_loop_map(well):
     """ripser in spawned worker processes (the GUI's setting) gives the in-thread numbers."""
-    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
-    here = rhythmap.analyze(st, (20, 150))
-    there = rhythmap.analyze(st, (20, 150), worker_processes=2, tile_loop_map=True)
+    st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    here = tempofield.analyze(st, (20, 150))
+    there = tempofield.analyze(st, (20, 150), worker_processes=2, tile_loop_map=True)
     for label, ref in here.references.items():
         np.testing.assert_allclose(there.references[label].beat_times_s, ref.beat_times_s)
         assert there.references[label].score == pytest.approx(ref.score)
@@ -163,10 +163,11 @@ def test_worker_processes_give_the_same_references_and_a_tile_loop_map(well):
 
 def test_a_tile_of_the_loop_map_without_a_score_is_reported(well, monkeypatch):
     """A tile whose loop score cannot be computed stays NaN and the run says so; a real error is raised."""
-    from rhythmap import engine, rhythm
-    from rhythmap.errors import InputError
+    from tempofield.engine import processes
+    from tempofield.errors import InputError
+    from tempofield.kernels import rhythm
 
-    st = rhythmap.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
+    st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
     plain = rhythm.loop_score_of_traces
     calls = []
 
@@ -176,9 +177,9 @@ def test_a_tile_of_the_loop_map_without_a_score_is_reported(well, monkeypatch):
             raise InputError("too few windows")
         return plain(traces, *args, **kwargs)
 
-    monkeypatch.setattr(engine, "_process_pool", lambda n: None)  # in this thread, so the patch applies
+    monkeypatch.setattr(processes, "process_pool", lambda n: None)  # in this thread, so the patch applies
     monkeypatch.setattr(rhythm, "loop_score_of_traces", flaky)
-    res = rhythmap.analyze(st, (20, 150), tile_loop_map=True)
+    res = tempofield.analyze(st, (20, 150), tile_loop_map=True)
     warned = [w for w in res.parameters["warnings"] if w.startswith("loop-score map")]
     assert len(warned) == 1 and "1 tile(s)" in warned[0] and "too few windows" in warned[0]
     loop = res.extra_maps["loop_score_tiles"]
@@ -187,4 +188,4 @@ def test_a_tile_of_the_loop_map_without_a_score_is_reported(well, monkeypatch):
 
     monkeypatch.setattr(rhythm, "loop_score_of_traces", lambda *a, **k: 1 / 0)
     with pytest.raises(ZeroDivisionError):
-        rhythmap.analyze(st, (20, 150), tile_loop_map=True)
+        tempofield.analyze(st, (20, 150), tile_loop_map=True)

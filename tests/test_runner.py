@@ -1,10 +1,10 @@
-"""The batch runner (rhythmap.batch, runner/run_batch.py) on a real dask.distributed cluster.
+"""The batch runner (tempofield.batch.runner, runner/run_batch.py) on a real dask.distributed cluster.
 
-A small experiment of synthetic wells (rhythmap.synthetic.well_scene) is written
+A small experiment of synthetic wells (tempofield.scenes.synthetic.well_scene) is written
 as real files: an ImageJ TIFF with its frame interval, a plain TIFF and a plain
 Zarr array without metadata (given in the manifest), an OME-Zarr image, and a
 corrupt TIFF. Results from the runner must equal in-process
-``rhythmap.analyze`` on the same files; faults (a worker SIGKILLed, the runner
+``tempofield.analyze`` on the same files; faults (a worker SIGKILLed, the runner
 itself killed) must not change them or leave a half-written folder taken as
 finished. Job scripts for SLURM and PBS come from dask-jobqueue's own
 ``job_script()`` with the example config; no queueing system is needed.
@@ -27,10 +27,12 @@ import pytest
 import tifffile
 import zarr
 
-import rhythmap
-from rhythmap import batch, synthetic
-from rhythmap.convert import convert_stack
-from rhythmap.result import MAP_NAMES, is_complete
+import tempofield
+from tempofield.batch import cluster as batch_cluster
+from tempofield.batch import config, resume, runner, summary
+from tempofield.engine.convert import convert_stack
+from tempofield.outputs.result import MAP_NAMES, is_complete
+from tempofield.scenes import synthetic
 
 REPO = Path(__file__).resolve().parents[1]
 RUN_BATCH = REPO / "runner" / "run_batch.py"
@@ -62,7 +64,7 @@ def experiment(tmp_path_factory):
                              metadata={"axes": "TYX", "finterval": FI_S, "unit": "um"})
         elif kind == "ome-zarr":
             path = folder / f"{name}.ome.zarr"
-            convert_stack(rhythmap.open_stack(frames, frame_interval_s=FI_S, pixel_size_um=PX_UM), path)
+            convert_stack(tempofield.open_stack(frames, frame_interval_s=FI_S, pixel_size_um=PX_UM), path)
         elif kind == "plain-tif":
             path = folder / f"{name}.tif"
             tifffile.imwrite(path, frames)
@@ -89,14 +91,14 @@ def experiment(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def reference(experiment):
-    """In-process rhythmap.analyze on the same files (dask threads, no distributed client)."""
+    """In-process tempofield.analyze on the same files (dask threads, no distributed client)."""
     from distributed.client import _get_global_client
 
     assert _get_global_client() is None, "the reference must be computed without a distributed client"
     out = {}
     for name, path in experiment["paths"].items():
-        stack = rhythmap.open_stack(path, FI_S, PX_UM)
-        out[name] = rhythmap.analyze(stack, (20, 150))
+        stack = tempofield.open_stack(path, FI_S, PX_UM)
+        out[name] = tempofield.analyze(stack, (20, 150))
     return out
 
 
@@ -113,7 +115,7 @@ def cluster(reference):
 
 def _assert_same_as_reference(out: Path, names, reference):
     for name in names:
-        got = rhythmap.load_result(out / name)
+        got = tempofield.load_result(out / name)
         want = reference[name.split("-")[0]]
         for m in MAP_NAMES:
             np.testing.assert_allclose(got.maps[m], want.maps[m], rtol=1e-5, atol=1e-6, equal_nan=True,
@@ -122,7 +124,7 @@ def _assert_same_as_reference(out: Path, names, reference):
 
 
 def _run(*argv):
-    return batch.main([str(a) for a in argv])
+    return runner.main([str(a) for a in argv])
 
 
 # ------------------------------------------------------------------------------------------ cluster tests
@@ -159,7 +161,7 @@ def test_batch_matches_in_process_analyze_and_reports_the_corrupt_stack(experime
         copy = rec["input"]["batch"]["analysed_copy"]
         if kind.endswith("tif"):
             assert copy.endswith(".ome.zarr") and rec["input"]["identity"]["source"] == copy
-            assert Path(copy).parent == out / batch.CONVERTED_DIR
+            assert Path(copy).parent == out / config.CONVERTED_DIR
         else:
             assert copy is None
         assert rec["input"]["batch"]["source_identity"]["source"] == str(experiment["paths"][name])
@@ -197,7 +199,7 @@ def test_worker_killed_mid_batch_gives_identical_results(experiment, reference, 
         victim = None
         deadline = time.monotonic() + 60
         while victim is None and time.monotonic() < deadline and runner.is_alive():
-            busy = [w for w, keys in watcher.processing().items() if any("rhythmap" in str(k) for k in keys)]
+            busy = [w for w, keys in watcher.processing().items() if any("tempofield" in str(k) for k in keys)]
             if busy:
                 victim = busy[0]
             else:
@@ -236,13 +238,13 @@ def test_stacks_are_driven_from_both_workers(experiment, tmp_path):
         stream's times are shifted by the scheduler's running estimate of each worker's clock
         offset, which moved by 0.2 s between two tasks on a loaded machine.)"""
 
-        name = "rhythmap-driver-spans"
+        name = "tempofield-driver-spans"
 
         def setup(self, worker):
             self.spans = {}
 
         def transition(self, key, start, finish, **kwargs):
-            if not str(key).startswith("rhythmap-stack-"):
+            if not str(key).startswith("tempofield-stack-"):
                 return
             now = time.monotonic()
             if finish == "executing":
@@ -259,7 +261,7 @@ def test_stacks_are_driven_from_both_workers(experiment, tmp_path):
         rc = _run(experiment["folder"] / "good_twice.csv", "-o", tmp_path / "out", "--scheduler",
                   own.scheduler_address, *RATE, "--quiet", "--no-report", "--in-flight", "2")
         assert rc == 0
-        spans = watcher.run(lambda dask_worker: list(dask_worker.plugins["rhythmap-driver-spans"].spans.values()))
+        spans = watcher.run(lambda dask_worker: list(dask_worker.plugins["tempofield-driver-spans"].spans.values()))
     assert sum(map(len, spans.values())) == 2 * len(GOOD)
     for worker, runs in spans.items():  # two stacks in flight, two workers: one driver per worker at a time
         assert all(stop is not None for _, stop in runs)
@@ -309,7 +311,7 @@ def test_runner_killed_mid_batch_then_rerun_finishes_only_the_rest(experiment, r
     assert mtimes == {n: (out / n / "run.json").stat().st_mtime_ns for n in finished}
     assert is_complete(out / torn)
     _assert_same_as_reference(out, names, reference)
-    leftovers = [p.name for p in out.rglob(".*") if "partial" in p.name or p.name == batch.LOCK_FILE]
+    leftovers = [p.name for p in out.rglob(".*") if "partial" in p.name or p.name == config.LOCK_FILE]
     assert leftovers == []
 
 
@@ -322,17 +324,17 @@ def test_runner_killed_mid_batch_then_rerun_finishes_only_the_rest(experiment, r
              "#PBS -l walltime=04:00:00"]),
 ])
 def test_job_scripts_from_the_example_config(kind, expected, capsys):
-    cfg = batch.load_config(EXAMPLE_CONFIG)
-    settings = batch.cluster_settings({**cfg, "cluster": {**cfg["cluster"], "kind": kind}})
-    cluster = batch.make_jobqueue_cluster(settings)  # builds the script; submits nothing
+    cfg = config.load_config(EXAMPLE_CONFIG)
+    settings = config.cluster_settings({**cfg, "cluster": {**cfg["cluster"], "kind": kind}})
+    jobs = batch_cluster.make_jobqueue_cluster(settings)  # builds the script; submits nothing
     try:
-        script = cluster.job_script()
+        script = jobs.job_script()
     finally:
-        cluster.close()
+        jobs.close()
     for line in expected:
         assert line in script.splitlines(), (line, script)
     assert "--nworkers 2" in script and "--nthreads 4" in script  # 8 cores shared by 2 worker processes
-    assert batch.main(["--config", str(EXAMPLE_CONFIG), "--cluster", kind, "--job-script"]) == 0
+    assert runner.main(["--config", str(EXAMPLE_CONFIG), "--cluster", kind, "--job-script"]) == 0
     assert expected[0] in capsys.readouterr().out
 
 
@@ -357,36 +359,36 @@ def test_bad_usage_exits_with_code_2_and_a_message(tmp_path, capsys, config, arg
     cfg = tmp_path / "batch.toml"
     cfg.write_text(config)
     argv = [a.format(folder=tmp_path) for a in argv]
-    rc = batch.main([*argv, "-o", str(tmp_path / "out"), "--config", str(cfg)])
+    rc = runner.main([*argv, "-o", str(tmp_path / "out"), "--config", str(cfg)])
     err = capsys.readouterr().err
     assert rc == 2
     assert message in err and "Traceback" not in err
 
 
 def test_folder_names_wells_and_folder_states(tmp_path):
-    assert batch.stem_name("/d/plate1_B03.ome.tif") == "plate1_B03"
-    assert batch.stem_name("/d/run 1.ome.zarr/") == "run_1"
-    assert batch.unique_names(["a", "A", "a", "b"]) == ["a", "A-2", "a-3", "b"]
-    assert batch.parse_well("plate1_B03_t0") == (1, 2) and batch.parse_well("h12") == (7, 11)
-    assert batch.parse_well("stack") is None
+    assert config.stem_name("/d/plate1_B03.ome.tif") == "plate1_B03"
+    assert config.stem_name("/d/run 1.ome.zarr/") == "run_1"
+    assert config.unique_names(["a", "A", "a", "b"]) == ["a", "A-2", "a-3", "b"]
+    assert summary.parse_well("plate1_B03_t0") == (1, 2) and summary.parse_well("h12") == (7, 11)
+    assert summary.parse_well("stack") is None
     params, ident = {"rate_range_bpm": [20.0, 150.0], "false_alarm": 0.001}, {"source": "/x.tif", "mtime": 1.5}
-    assert batch.folder_state(tmp_path / "none", params, ident) == "absent"
+    assert resume.folder_state(tmp_path / "none", params, ident) == "absent"
     user = tmp_path / "user"
     user.mkdir()
     (user / "notes.txt").write_text("mine")
-    assert batch.folder_state(user, params, ident) == "foreign"
+    assert resume.folder_state(user, params, ident) == "foreign"
     partial = tmp_path / "partial"
     (partial / "maps.ome.zarr").mkdir(parents=True)
-    assert batch.folder_state(partial, params, ident) == "partial"
+    assert resume.folder_state(partial, params, ident) == "partial"
     done = tmp_path / "done"
     done.mkdir()
-    run = {"format": "rhythmap-result", "parameters": {**params, "warnings": []},
+    run = {"format": "tempofield-result", "parameters": {**params, "warnings": []},
            "input": {"identity": {"source": "/copy.ome.zarr"},
-                     "batch": {"runner": batch.RUNNER_TAG, "source_identity": ident}}}
+                     "batch": {"runner": config.RUNNER_TAG, "source_identity": ident}}}
     (done / "run.json").write_text(json.dumps(run))
-    assert batch.folder_state(done, params, ident) == "finished"
-    assert batch.folder_state(done, {**params, "false_alarm": 0.01}, ident) == "stale"
-    assert batch.folder_state(done, params, {**ident, "mtime": 2.0}) == "stale"
-    del run["input"]["batch"]  # made by `rhythmap analyze`, not by the runner: never replaced
+    assert resume.folder_state(done, params, ident) == "finished"
+    assert resume.folder_state(done, {**params, "false_alarm": 0.01}, ident) == "stale"
+    assert resume.folder_state(done, params, {**ident, "mtime": 2.0}) == "stale"
+    del run["input"]["batch"]  # made by `tempofield analyze`, not by the runner: never replaced
     (done / "run.json").write_text(json.dumps(run))
-    assert batch.folder_state(done, {**params, "false_alarm": 0.01}, ident) == "foreign"
+    assert resume.folder_state(done, {**params, "false_alarm": 0.01}, ident) == "foreign"

@@ -7,9 +7,9 @@ import pytest
 import scipy.fft
 import scipy.signal
 
-from rhythmap import spectral
-from rhythmap.errors import InputError
-from rhythmap.preprocess import detrend, trend_basis
+from tempofield.errors import InputError
+from tempofield.kernels import spectral
+from tempofield.kernels.preprocess import detrend, trend_basis
 
 DT = 0.05
 T = 400
@@ -75,7 +75,7 @@ def test_amplitude_in_input_units(rng):
 
 def test_pulse_train_reported_at_fundamental_not_harmonic():
     """A calcium-like pulse train has strong harmonics; the octave check keeps the fundamental."""
-    from rhythmap.synthetic import calcium_wave
+    from tempofield.scenes.synthetic import calcium_wave
 
     t = np.arange(T) * DT
     x = calcium_wave(t * 40 / 60)[:, None]  # 40 bpm, harmonics at 80, 120, 160 inside the band
@@ -169,7 +169,7 @@ def test_constant_traces_have_no_peak_and_no_periodicity():
 def test_noise_median_is_numpys_partition_exactly(case):
     """The compiled bisection returns the very ordinate numpy's partition puts at the median rank,
     for blocks of any width (a short last block included), zeros, ties and huge peaks."""
-    from rhythmap import _loops
+    from tempofield.kernels import _spectral_loops
 
     rng = np.random.default_rng(["noise", "zeros", "ties", "peaks", "narrow"].index(case))
     n_bins, first = 301, 7
@@ -185,7 +185,7 @@ def test_noise_median_is_numpys_partition_exactly(case):
     m = (n_bins - first + 1) // 2
     for rank in (m // 2, 0, m - 1):
         got = np.empty(n, np.float32)
-        _loops.noise_median(power, first, rank, got, n)
+        _spectral_loops.noise_median(power, first, rank, got, n)
         want = np.partition(np.ascontiguousarray(power[first::2][:m].T), rank, axis=1)[:, rank]
         np.testing.assert_array_equal(got, want)
 
@@ -195,9 +195,9 @@ def test_compiled_rfft_equals_scipy_float64(rng, n_frames):
     """The compiled mixed-radix rFFT along time (radices 2, 3, 4, 5) against scipy.fft.rfft in
     float64 (reference library), within float32 rounding, for widths that leave a short last block
     of traces; and the sizes it does not handle (odd T, other prime factors) go to scipy."""
-    from rhythmap import _loops
+    from tempofield.kernels import _spectral_loops
 
-    n = _loops.FFT_TRACE_BLOCK * 2 + 37
+    n = _spectral_loops.FFT_TRACE_BLOCK * 2 + 37
     x = (rng.normal(0, 1, (n_frames, n)) + 50 * np.sin(np.arange(n_frames) / 3.0)[:, None]).astype(np.float32)
     assert spectral.fft_tables(n_frames) is not None
     got = spectral.rfft_time(x)
@@ -214,7 +214,7 @@ def test_trend_coefficients_do_not_depend_on_the_other_traces(rng, n_frames):
     """The trend coefficients made on the way through the FFT (and by the loop used where scipy
     does the FFT) equal basis @ x within float32 rounding, and a trace gets the very same numbers
     in any block of traces: what keeps the maps identical for any tiling (BLAS's sgemm does not)."""
-    from rhythmap import _loops
+    from tempofield.kernels import _spectral_loops
 
     x = (1000 + rng.normal(0, 30, (n_frames, 300))).astype(np.float32)
     basis_t = np.ascontiguousarray(trend_basis(n_frames, DT, 0.25).T, np.float32)
@@ -226,7 +226,7 @@ def test_trend_coefficients_do_not_depend_on_the_other_traces(rng, n_frames):
         spectral.rfft_time(np.ascontiguousarray(x[:, a:b]), basis_t=basis_t, coef=part)
         np.testing.assert_array_equal(part, coef[:, a:b])
     loop = np.empty_like(coef)
-    _loops.trend_coefficients(x, basis_t, loop)
+    _spectral_loops.trend_coefficients(x, basis_t, loop)
     np.testing.assert_array_equal(loop, coef)
 
 
@@ -235,3 +235,27 @@ def test_rfft_sizes_without_compiled_plan_use_scipy(rng, n_frames):
     x = rng.normal(0, 1, (n_frames, 9)).astype(np.float32)
     assert spectral.fft_tables(n_frames) is None
     np.testing.assert_allclose(spectral.rfft_time(x), scipy.fft.rfft(x, axis=0), rtol=0, atol=1e-5)
+
+
+@pytest.mark.parametrize("n_frames", [240, 256, 600, 1000, 1024])
+def test_the_scipy_route_gives_the_maps_of_the_compiled_route(rng, n_frames, monkeypatch):
+    """Every length with a compiled plan (radices 2, 3, 4, 5; powers of two) gives the same maps
+    through scipy.fft (the route of odd T and other prime factors) when its plan is hidden."""
+    from tempofield.engine import tile_kernels
+
+    t = np.arange(n_frames)[:, None, None] * DT
+    beat = 40 * np.sin(2 * np.pi * 1.4 * t + rng.uniform(0, 6, (1, 12, 14)))
+    block = (800 + beat + rng.normal(0, 6, (n_frames, 12, 14))).astype(np.float32)
+    plan = _plan(n=n_frames)
+    basis = trend_basis(n_frames, DT, 0.25 * 30 / 60)
+    assert spectral.fft_tables(n_frames) is not None
+    compiled = tile_kernels.maps_tile_kernel(block, 0, 0, halo=1, plan=plan, basis=basis, gram_bin=None)["maps"]
+    monkeypatch.setattr(spectral, "fft_tables", lambda n: None)
+    via_scipy = tile_kernels.maps_tile_kernel(block, 0, 0, halo=1, plan=plan, basis=basis, gram_bin=None)["maps"]
+    keys = spectral.MAP_KEYS
+    for i, key in enumerate(keys):
+        if key in ("detected", "constant"):
+            np.testing.assert_array_equal(via_scipy[i], compiled[i], err_msg=key)
+        else:  # float32 rounding of the two FFTs; the noise level (peak score's denominator) feels it most
+            np.testing.assert_allclose(via_scipy[i], compiled[i], rtol=1e-3 if key == "peak_score" else 1e-4,
+                                       atol=1e-5, equal_nan=True, err_msg=key)

@@ -8,8 +8,8 @@ import pytest
 import tifffile
 import zarr
 
-from rhythmap import open_stack
-from rhythmap.errors import InputError, MissingMetadataError, StackNotFoundError
+from tempofield import open_stack
+from tempofield.errors import InputError, MissingMetadataError, StackNotFoundError
 
 
 @pytest.fixture
@@ -180,22 +180,22 @@ def test_mp4_h264_video_gives_its_frame_rate_and_its_beat(tmp_path):
     assert s.shape == (n, h, w)
     assert s.frame_interval_s == pytest.approx(1 / fps)
     assert np.abs(s.data.compute().astype(float) - frames).mean() < 3  # luminance, within the codec's loss
-    import rhythmap
+    import tempofield
 
-    res = rhythmap.analyze(s, (60, 200), maps_only=True)
+    res = tempofield.analyze(s, (60, 200), maps_only=True)
     assert np.isfinite(res.rate_bpm).mean() > 0.95
     assert np.nanmedian(res.rate_bpm) == pytest.approx(90.0, abs=0.5)
 
 
 def test_a_video_too_big_for_memory_points_to_convert_which_streams_it(tmp_path, rng, monkeypatch):
-    from rhythmap import stack as stack_mod
-    from rhythmap.convert import convert_stack
+    from tempofield.engine import stack as stack_mod
+    from tempofield.engine.convert import convert_stack
 
     p = tmp_path / "long.avi"
     gray = rng.integers(0, 255, (40, 24, 40)).astype(np.uint8)
     _write_video(p, gray, rate=50)
     monkeypatch.setattr(stack_mod, "video_memory_limit", lambda: 10 * 24 * 40)  # ten frames
-    with pytest.raises(InputError, match=r"rhythmap convert long.avi long.ome.zarr"):
+    with pytest.raises(InputError, match=r"tempofield convert long.avi long.ome.zarr"):
         open_stack(p)
     # convert decodes frame by frame to disk, never the whole video in memory
     monkeypatch.setattr(stack_mod, "_decode_video", lambda *a, **k: pytest.fail("decoded whole"))
@@ -245,7 +245,7 @@ def test_truncated_tiff_is_a_clear_error(tmp_path, rng, kind, keep):
     """A TIFF cut short (an interrupted copy) is refused as truncated, when it is opened or at the
     latest when it is read, never analysed as the single frame tifffile falls back to, and never
     with a bare library error."""
-    import rhythmap
+    import tempofield
 
     data = rng.integers(0, 4000, (200, 32, 32)).astype(np.uint16)
     p = tmp_path / "t.tif"
@@ -260,7 +260,7 @@ def test_truncated_tiff_is_a_clear_error(tmp_path, rng, kind, keep):
     p.write_bytes(raw[: int(len(raw) * keep)])
     with pytest.raises(InputError, match=r"t\.tif.* truncated or corrupt"):
         st = open_stack(p, frame_interval_s=0.05)
-        rhythmap.analyze(st, (30, 180), maps_only=True)
+        tempofield.analyze(st, (30, 180), maps_only=True)
 
 
 def test_convert_decodes_frame_wise_pieces_once(tmp_path, rng):
@@ -268,8 +268,8 @@ def test_convert_decodes_frame_wise_pieces_once(tmp_path, rng):
     once, not once per 128-row band, and converts exactly; the temporary file is removed."""
     import threading
 
-    import rhythmap
-    from rhythmap.convert import convert_stack
+    import tempofield
+    from tempofield.engine.convert import convert_stack
 
     frames = rng.integers(0, 4000, (30, 300, 70), dtype=np.uint16)
     decoded = []
@@ -281,7 +281,7 @@ def test_convert_decodes_frame_wise_pieces_once(tmp_path, rng):
         return block
 
     data = da.from_array(frames, chunks=(1, 300, 70)).map_blocks(decode, dtype=frames.dtype)
-    out = convert_stack(rhythmap.open_stack(data, frame_interval_s=0.05), tmp_path / "c.ome.zarr")
+    out = convert_stack(tempofield.open_stack(data, frame_interval_s=0.05), tmp_path / "c.ome.zarr")
     assert sorted(decoded) == sorted(set(decoded)) and len(decoded) == 30  # each frame once (3 bands)
-    np.testing.assert_array_equal(rhythmap.open_stack(out).data.compute(), frames)
+    np.testing.assert_array_equal(tempofield.open_stack(out).data.compute(), frames)
     assert [p.name for p in tmp_path.iterdir()] == ["c.ome.zarr"]

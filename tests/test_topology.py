@@ -1,4 +1,4 @@
-"""Tests of rhythmap.topology: landmarks, H1 persistence, scores, circular coordinates.
+"""Tests of tempofield.kernels.topology: landmarks, H1 persistence, scores, circular coordinates.
 
 External references: gudhi's RipsComplex (CHECKS reference-library table),
 CHECKS #1 (Perea & Harer 2015; Adamaszek & Adams 2017), #2 (Perea & Harer 2015,
@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from rhythmap.embedding import sliding_window_sqdist
-from rhythmap.errors import InputError
-from rhythmap.topology import (
+from tempofield.errors import InputError
+from tempofield.kernels.embedding import sliding_window_sqdist
+from tempofield.kernels.topology import (
     MAX_LOOP_PERSISTENCE,
     _lifted_cocycle_matrix,
     circular_coordinates,

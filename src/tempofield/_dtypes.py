@@ -1,4 +1,4 @@
-"""The one dtype policy of rhythmap's kernels.
+"""The one dtype policy of tempofield's kernels.
 
 float32 stays float32; float64 stays float64 where a kernel asks for it (Gram
 matrices, distances); every integer or boolean input becomes float32 before any

@@ -1,6 +1,6 @@
-"""The ``rhythmap`` command: analyse a stack, run the demo, convert to OME-Zarr, make samples.
+"""The ``tempofield`` command: analyse a stack, run the demo, convert to OME-Zarr, make samples.
 
-Every analysis option comes from :data:`rhythmap.options.OPTIONS`, so the
+Every analysis option comes from :data:`tempofield.engine.options.OPTIONS`, so the
 command line, the napari panel and the runner cannot drift apart. Errors the
 user can fix end the program with exit code 2 and one paragraph, never a
 traceback.
@@ -14,54 +14,17 @@ import sys
 import time
 from pathlib import Path
 
-from . import __version__
-from .errors import InputError, RhythmapError
-from .options import DEFAULT_RATE_RANGE_BPM, OPTIONS
-
-DEFAULT_RATE_RANGE = DEFAULT_RATE_RANGE_BPM  # the runner's name for it
-
-CAUTION = ("rhythmap is a research tool, not a diagnostic device: its rates are not clinical heart-rate or "
-           "ciliary-beat-frequency measurements. Defer to clinical standards and local practice.")
-
-
-
-def _flag(name: str) -> str:
-    return "--" + name.replace("_", "-")
-
-
-def add_analysis_arguments(p: argparse.ArgumentParser) -> None:
-    """Arguments shared by every command that runs the engine (also used by the runner)."""
-    p.add_argument("--frame-interval", type=float, metavar="S",
-                   help="seconds between frames (overrides the file's metadata; required if it has none)")
-    p.add_argument("--pixel-size", type=float, metavar="UM",
-                   help="pixel edge in micrometres (overrides the file's metadata)")
-    p.add_argument("--rate-range", type=float, nargs=2, metavar=("LO", "HI"), default=None,
-                   help=f"band of rates to look for, beats per minute (default: the --specimen preset's band, "
-                        f"else {DEFAULT_RATE_RANGE_BPM[0]:g} {DEFAULT_RATE_RANGE_BPM[1]:g})")
-    p.add_argument("--channel", type=int, help="channel index for multi-channel stacks")
-    p.add_argument("--plane", type=int, help="focal plane (Z) index for multi-plane stacks")
-    group = p.add_argument_group("analysis options")
-    for opt in OPTIONS:
-        if not opt.cli:
-            continue
-        if opt.kind is bool:  # --name and --no-name; unset leaves the default (or a batch config's value)
-            group.add_argument(_flag(opt.name), dest=opt.name, action=argparse.BooleanOptionalAction,
-                               default=None, help=f"{opt.help} (default {'on' if opt.default else 'off'})")
-        else:
-            group.add_argument(_flag(opt.name), dest=opt.name, type=str, default=None,
-                               metavar=opt.kind.__name__.upper(), help=f"{opt.help} (default {opt.default})")
-
-
-def options_from_args(args) -> dict:
-    """The analysis options a user set on the command line (validated later by the engine)."""
-    return {o.name: getattr(args, o.name) for o in OPTIONS if getattr(args, o.name, None) is not None}
+from tempofield import __version__
+from tempofield.cliargs import add_analysis_arguments, options_from_args
+from tempofield.errors import InputError, TempofieldError
+from tempofield.outputs.texts import CAUTION
 
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="rhythmap", description="Maps of where rhythmic tissue beats, how fast, how regularly and in "
+        prog="tempofield", description="Maps of where rhythmic tissue beats, how fast, how regularly and in "
                                      "which order. " + CAUTION)
-    parser.add_argument("--version", action="version", version=f"rhythmap {__version__}")
+    parser.add_argument("--version", action="version", version=f"tempofield {__version__}")
     sub = parser.add_subparsers(dest="command", required=True)
 
     a = sub.add_parser("analyze", help="analyse one stack and write a result folder")
@@ -72,7 +35,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_analysis_arguments(a)
 
     d = sub.add_parser("demo", help="analyse the shipped sample stack and print where the results are")
-    d.add_argument("-o", "--out", default="rhythmap-demo", help="result folder (default ./rhythmap-demo)")
+    d.add_argument("-o", "--out", default="tempofield-demo", help="result folder (default ./tempofield-demo)")
     d.add_argument("--overwrite", action="store_true", help="replace an existing demo result")
 
     c = sub.add_parser("convert", help="convert a stack to OME-Zarr with the whole time axis in each chunk")
@@ -84,7 +47,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--plane", type=int)
     c.add_argument("--overwrite", action="store_true")
 
-    sub.add_parser("batch", help="analyse many stacks on a dask cluster (options: rhythmap batch --help; "
+    sub.add_parser("batch", help="analyse many stacks on a dask cluster (options: tempofield batch --help; "
                                  "see runner/README.md)", add_help=False)
 
     m = sub.add_parser("make-samples", help="regenerate the synthetic sample stacks and their ground truth")
@@ -122,9 +85,9 @@ class _Bar:
 def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, rate_range_bpm=None,
                  channel=None, plane=None, overwrite=False, progress=None, options=None):
     """Open, analyse and save one stack; the shared path of ``analyze`` and ``demo``."""
-    from .engine import analyze
-    from .result import ResultExistsError
-    from .stack import open_stack
+    from tempofield.engine.run import analyze
+    from tempofield.engine.stack import open_stack
+    from tempofield.outputs.result import ResultExistsError
 
     out = Path(out).resolve()
     if out.exists() and not overwrite:  # fail before the work, not after it
@@ -132,20 +95,20 @@ def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, 
             f"{str(out)!r} already exists; nothing was written. Choose another folder with -o, or add "
             "--overwrite to replace it.")
     stack = open_stack(stack_path, frame_interval_s, pixel_size_um, channel=channel, plane=plane)
-    from ._atomic import check_replaceable
-    from .result import is_result_folder
+    from tempofield.io.atomic import check_replaceable
+    from tempofield.outputs.result import is_result_folder
 
-    check_replaceable(out, is_result_folder, "rhythmap result folder",
+    check_replaceable(out, is_result_folder, "tempofield result folder",
                       protect=[stack.source] if stack.source != "array" else [])
     parent = next((p for p in [out.parent, *out.parent.parents] if p.exists()), None)
     if parent is None or not os.access(parent, os.W_OK):
         raise InputError(f"cannot write {str(out)!r}: {str(parent)!r} is not writable. Choose another -o folder.")
     result = analyze(stack, rate_range_bpm, progress=progress, **(options or {}))
-    from .report import report_writers
+    from tempofield.outputs.report import report_writers
 
     writers = report_writers(result, stack)
     if result.parameters.get("magnified_preview"):
-        from .report import preview_writer
+        from tempofield.outputs.report import preview_writer
 
         writers.update(preview_writer(result, stack))
     result.save(out, overwrite=overwrite, extra_files=writers)
@@ -158,7 +121,7 @@ SUMMARY_COLUMNS = ("region", "area_px", "rate_median_bpm", "beats", "beat_interv
 
 def print_summary(result, out, stream=sys.stdout) -> None:
     s = result.summary()
-    lines = [f"rhythmap {__version__}: results written to {Path(out).resolve()}",
+    lines = [f"tempofield {__version__}: results written to {Path(out).resolve()}",
              f"  frames {result.input.get('shape', ['?'])[0]} x {result.shape[0]} x {result.shape[1]} px, "
              f"frame interval {result.frame_interval_s:g} s",
              f"  rhythmic area        {100 * s['rhythmic_fraction']:.1f} % of the field",
@@ -190,15 +153,15 @@ def find_sample(name="well_sheet.tif") -> Path:
             return folder / name
     import tempfile
 
-    from .samples import write_samples
+    from tempofield.scenes.samples import write_samples
 
-    folder = Path(tempfile.mkdtemp(prefix="rhythmap-samples-"))
+    folder = Path(tempfile.mkdtemp(prefix="tempofield-samples-"))
     write_samples(folder)
     return folder / name
 
 
 def _convert(args) -> None:
-    from .convert import convert_stack
+    from tempofield.engine.convert import convert_stack
 
     out = convert_stack(args.stack, args.out, frame_interval_s=args.frame_interval,
                         pixel_size_um=args.pixel_size, channel=args.channel, plane=args.plane,
@@ -209,7 +172,7 @@ def _convert(args) -> None:
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     if argv[:1] == ["batch"]:  # the batch runner has its own options
-        from .batch import main as batch_main
+        from tempofield.batch.runner import main as batch_main
 
         return batch_main(argv[1:])
     parser = build_parser()
@@ -236,19 +199,19 @@ def main(argv=None) -> int:
         elif args.command == "convert":
             _convert(args)
         elif args.command == "make-samples":
-            from .samples import write_samples
+            from tempofield.scenes.samples import write_samples
 
             for path in write_samples(Path(args.folder)):
                 print(f"wrote {path}")
-    except RhythmapError as exc:
-        print(f"rhythmap: error: {exc}", file=sys.stderr)
+    except TempofieldError as exc:
+        print(f"tempofield: error: {exc}", file=sys.stderr)
         return 2
     except OSError as exc:  # unwritable folder, full disk, unreadable file: the user's to fix
-        print(f"rhythmap: error: {exc.strerror or exc}: {exc.filename or ''}. Nothing was left half-written; "
+        print(f"tempofield: error: {exc.strerror or exc}: {exc.filename or ''}. Nothing was left half-written; "
               "check the path, its permissions and the free space.", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("rhythmap: interrupted; no partial result was left behind.", file=sys.stderr)
+        print("tempofield: interrupted; no partial result was left behind.", file=sys.stderr)
         return 130
     return 0
 

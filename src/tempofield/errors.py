@@ -1,19 +1,19 @@
-"""The exception family of rhythmap.
+"""The exception family of tempofield.
 
-Every error the package raises on purpose is a :class:`RhythmapError`. The
+Every error the package raises on purpose is a :class:`TempofieldError`. The
 subclasses also derive from the builtin they mean, so callers may catch either
-``rhythmap.errors.InputError`` or plain ``ValueError``. Messages say what is
+``tempofield.errors.InputError`` or plain ``ValueError``. Messages say what is
 wrong, where, and how to fix it, in words a user can act on.
 """
 
 from __future__ import annotations
 
 
-class RhythmapError(Exception):
-    """Base class of all errors raised on purpose by rhythmap."""
+class TempofieldError(Exception):
+    """Base class of all errors raised on purpose by tempofield."""
 
 
-class InputError(RhythmapError, ValueError):
+class InputError(TempofieldError, ValueError):
     """A value given by the user (argument, option, file content) is not usable."""
 
 
@@ -21,13 +21,13 @@ class MissingMetadataError(InputError):
     """A needed piece of metadata (frame interval, pixel size) is absent."""
 
 
-class StackNotFoundError(RhythmapError, FileNotFoundError):
+class StackNotFoundError(TempofieldError, FileNotFoundError):
     """The input path does not exist."""
 
 
-class ResultExistsError(RhythmapError, FileExistsError):
+class ResultExistsError(TempofieldError, FileExistsError):
     """An output folder already holds a result and overwriting was not asked for."""
 
 
-class CancelledError(RhythmapError):
+class CancelledError(TempofieldError):
     """The analysis was cancelled by the caller before it finished."""

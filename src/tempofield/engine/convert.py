@@ -15,10 +15,15 @@ from pathlib import Path
 import dask.array as da
 import numpy as np
 
-from . import omezarr
-from ._atomic import atomic_folder, check_replaceable
-from .errors import ResultExistsError
-from .stack import VIDEO_SUFFIXES, Stack, decode_video_to_file, open_stack
+from tempofield.engine.stack import (
+    VIDEO_SUFFIXES,
+    Stack,
+    decode_video_to_file,
+    open_stack,
+)
+from tempofield.errors import ResultExistsError
+from tempofield.io import omezarr
+from tempofield.io.atomic import atomic_folder, check_replaceable
 
 CHUNK_YX = 128
 
@@ -33,11 +38,11 @@ def convert_stack(source, out, *, frame_interval_s=None, pixel_size_um=None, cha
     Parameters
     ----------
     source : path, array or Stack
-        Anything :func:`rhythmap.open_stack` reads (or an opened Stack).
+        Anything :func:`tempofield.open_stack` reads (or an opened Stack).
     out : path
         Folder to create (conventionally ending in ``.ome.zarr``).
     frame_interval_s, pixel_size_um, channel, plane
-        As for :func:`rhythmap.open_stack`.
+        As for :func:`tempofield.open_stack`.
     overwrite : bool
         Replace an existing ``out``.
     progress : callable, optional

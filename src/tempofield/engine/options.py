@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass
 from typing import Any, Callable
 
-from .errors import InputError
+from tempofield.errors import InputError
 
 
 @dataclass(frozen=True)
@@ -32,7 +32,7 @@ DEFAULT_RATE_RANGE_BPM = (20.0, 240.0)
 
 
 def _specimen_names():
-    from .presets import SPECIMENS
+    from tempofield.engine.presets import SPECIMENS
 
     return SPECIMENS
 

@@ -2,14 +2,14 @@
 
 A preset only sets the search band and arms plausibility warnings; it never
 changes a measurement. The ranges are for research specimens, not clinical
-reference values: rhythmap is not a diagnostic device.
+reference values: tempofield is not a diagnostic device.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-from .errors import InputError
+from tempofield.errors import InputError
 
 
 @dataclass(frozen=True)

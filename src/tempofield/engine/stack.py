@@ -19,7 +19,7 @@ from typing import Any
 import dask.array as da
 import numpy as np
 
-from .errors import InputError, MissingMetadataError, StackNotFoundError
+from tempofield.errors import InputError, MissingMetadataError, StackNotFoundError
 
 TIFF_SUFFIXES = (".tif", ".tiff", ".btf", ".tf8")
 VIDEO_SUFFIXES = (".avi", ".mp4", ".mov", ".mkv", ".m4v", ".webm")
@@ -149,7 +149,7 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
             source, chunks=_default_chunks(source.shape, source.dtype))
         if data.ndim < 3:
             raise InputError(
-                f"the array has shape {tuple(data.shape)}: a single image, not a time series. rhythmap needs "
+                f"the array has shape {tuple(data.shape)}: a single image, not a time series. tempofield needs "
                 "frames over time, (T, Y, X).")
         arr_axes = (axes or ("TYX" if data.ndim == 3 else "")).upper()
         if len(arr_axes) != data.ndim:
@@ -174,7 +174,7 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
         data, file_meta, meta = _open_video(path)
     else:
         raise InputError(
-            f"cannot read {str(path)!r}: unknown file type {path.suffix!r}. rhythmap reads "
+            f"cannot read {str(path)!r}: unknown file type {path.suffix!r}. tempofield reads "
             f"TIFF ({', '.join(TIFF_SUFFIXES)}), Zarr/OME-Zarr folders and video "
             f"({', '.join(VIDEO_SUFFIXES)}); convert other formats to TIFF first.")
     return _finish(data, file_meta, frame_interval_s, pixel_size_um, str(path.resolve()), meta)
@@ -218,7 +218,7 @@ def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta) -> S
         raise InputError(f"{source!r} has {t} frame{'s' if t != 1 else ''} of {y} x {x} pixels: a time series "
                          "needs at least 8 frames (and in practice several cycles of the slowest rhythm).")
     if not (np.issubdtype(data.dtype, np.number) or data.dtype == bool):
-        raise InputError(f"{source!r} holds {data.dtype} values; rhythmap needs numeric pixels.")
+        raise InputError(f"{source!r} holds {data.dtype} values; tempofield needs numeric pixels.")
     return Stack(data=data, frame_interval_s=fi, pixel_size_um=ps, source=source, meta=meta)
 
 
@@ -262,7 +262,7 @@ def _reduce_axes(data, axes: str, channel, plane, where: str):
         else:
             what = "a single image" if axes in ("YX", "YXS") else f"axes {axes}"
             raise InputError(f"{where} holds {what} with no time axis: there is no time series to analyse. "
-                             "rhythmap needs a (T, Y, X) stack of at least 8 frames; if the frames were saved "
+                             "tempofield needs a (T, Y, X) stack of at least 8 frames; if the frames were saved "
                              "as separate files, combine them into one stack first.")
     extra = [a for a in axes if a not in "TYX"]
     if extra or len(axes) != 3:
@@ -360,7 +360,7 @@ class _tifffile_complaints:
 
     tifffile logs broken page offsets and inconsistent headers as warnings,
     then falls back to whatever it can read; the messages become part of
-    rhythmap's own error when the file turns out to be incomplete.
+    tempofield's own error when the file turns out to be incomplete.
     """
 
     def __enter__(self) -> list[str]:
@@ -490,7 +490,7 @@ def _open_zarr(path: Path, channel, plane):
         letters = "TYX" if arr.ndim == 3 else ""
         if not letters:
             raise InputError(
-                f"{str(path)!r} is a {arr.ndim}-D Zarr array without axis metadata; rhythmap needs "
+                f"{str(path)!r} is a {arr.ndim}-D Zarr array without axis metadata; tempofield needs "
                 "(T, Y, X) there, or an OME-Zarr image whose axes say which is which.")
         fi = arr.attrs.get("frame_interval_s")
         if fi is not None:
@@ -511,7 +511,7 @@ def _open_video(path: Path):
     Videos are decoded once, whole: seeking in compressed video is not exact
     enough for a lazy per-tile read. A video whose frames would take more than
     ``video_memory_limit()`` bytes is refused with a pointer to
-    ``rhythmap convert``, which decodes it in one streaming pass to disk.
+    ``tempofield convert``, which decodes it in one streaming pass to disk.
     """
     frames, rate = _decode_video(path)
     data = da.from_array(frames, chunks=(frames.shape[0], 256, 256))
@@ -548,15 +548,15 @@ def iter_video_frames(path: Path):
                 shape = gray.shape
             elif gray.shape != shape:
                 raise InputError(f"video {str(path)!r} changes frame size at frame {n} ({shape} to "
-                                 f"{gray.shape}); rhythmap needs one frame size throughout.")
+                                 f"{gray.shape}); tempofield needs one frame size throughout.")
             yield gray
 
 
 def _too_big(path: Path, n_bytes: int, limit: int) -> InputError:
     return InputError(
         f"video {str(path)!r} decodes to at least {n_bytes / 2**30:.1f} GB of frames, more than the "
-        f"{limit / 2**30:.1f} GB rhythmap holds in memory. Convert it once to a chunked OME-Zarr "
-        f"(decoded in one streaming pass to disk): `rhythmap convert {path.name} {path.stem}.ome.zarr`, then analyse the converted copy.")
+        f"{limit / 2**30:.1f} GB tempofield holds in memory. Convert it once to a chunked OME-Zarr "
+        f"(decoded in one streaming pass to disk): `tempofield convert {path.name} {path.stem}.ome.zarr`, then analyse the converted copy.")
 
 
 def _decode_video(path: Path, limit: int | None = None):
@@ -586,7 +586,7 @@ def decode_video_to_file(path: Path, dest: Path):
     """Decode a video frame by frame into a raw uint8 file: ((T, Y, X), frame rate or None).
 
     Memory stays at one frame; the file is the decoded size. For
-    :func:`rhythmap.convert.convert_stack`.
+    :func:`tempofield.engine.convert.convert_stack`.
     """
     it = iter_video_frames(path)
     rate, _ = next(it)

@@ -1,6 +1,6 @@
 """Folders that appear complete or not at all.
 
-Everything rhythmap writes as a folder (a result, a converted stack) is built
+Everything tempofield writes as a folder (a result, a converted stack) is built
 in a hidden sibling and renamed into place when complete; an existing folder
 is replaced only when the caller asked for it, and only after the new one is
 whole.
@@ -26,7 +26,7 @@ def check_replaceable(dest, is_ours, what: str, protect=()) -> Path:
     ResultExistsError
         When replacing ``dest`` would delete something that is not ours.
     """
-    from .errors import ResultExistsError
+    from tempofield.errors import ResultExistsError
 
     dest = Path(dest).resolve()
     for p in protect:

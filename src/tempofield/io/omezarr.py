@@ -1,7 +1,7 @@
 """OME-NGFF 0.5 images on Zarr v3: the one place that writes and reads them.
 
 Maps are stored as one (c, y, x) float32 array with a channel per map (names
-in ``omero.channels[].label`` and in our own ``rhythmap.channels`` list),
+in ``omero.channels[].label`` and in our own ``tempofield.channels`` list),
 ``dimension_names`` set, a type and unit on every axis, and the pixel size as
 the y/x scale. Label images go under ``labels/NAME`` as the NGFF spec lays out.
 Time-lapse stacks converted for the engine are written here too, as (t, y, x)
@@ -35,11 +35,11 @@ def write_maps(path, channels: dict[str, np.ndarray], *, pixel_size_um=None, lab
     axes = [{"name": "c", "type": "channel"}] + _space_axes(pixel_size_um)
     root.attrs["ome"] = {
         "version": NGFF_VERSION,
-        "multiscales": _multiscales("rhythmap maps", axes, [1.0, ps, ps]),
+        "multiscales": _multiscales("tempofield maps", axes, [1.0, ps, ps]),
         "omero": {"channels": [{"label": n, "active": i == 0, "color": "FFFFFF",
                                 "window": _window(stack[i])} for i, n in enumerate(names)]},
     }
-    root.attrs["rhythmap"] = {"channels": names, "units": {n: (units or {}).get(n, "") for n in names}}
+    root.attrs["tempofield"] = {"channels": names, "units": {n: (units or {}).get(n, "") for n in names}}
     _write_array(root, "0", stack, ["c", "y", "x"], chunks=(1,) + _plane_chunks(stack.shape[1:]))
     if labels:
         lab_group = root.require_group("labels")
@@ -76,7 +76,7 @@ def read_maps(path) -> tuple[dict[str, np.ndarray], dict]:
     """Read the maps written by :func:`write_maps`: ({name: (Y, X) array}, attrs)."""
     root = zarr.open_group(str(path), mode="r")
     attrs = dict(root.attrs)
-    names = attrs.get("rhythmap", {}).get("channels") or \
+    names = attrs.get("tempofield", {}).get("channels") or \
         [c["label"] for c in attrs["ome"]["omero"]["channels"]]
     data = np.asarray(root["0"][...])
     return {n: data[i] for i, n in enumerate(names)}, attrs

@@ -1,18 +1,14 @@
-"""Compiled inner loops (numba) for the per-pixel kernels that numpy cannot fuse.
+"""Compiled loops of the spectral kernel (:mod:`tempofield.kernels.spectral`).
 
 The spectral maps cost, per pixel, one FFT plus a handful of cheap steps
-(pooling, power, a median, a peak search, harmonic sums). Written as numpy
-array expressions each step is a separate pass over memory, and together they
-cost four times the FFT; as one compiled loop per pixel they cost a fraction
-of it. Each function here is the single implementation of its step; the
-public functions in :mod:`rhythmap.preprocess` and :mod:`rhythmap.spectral`
-check their arguments and call these. All functions release the GIL, so the
-engine's tile threads run them in parallel, and cache their machine code next
-to this file (the first call in a fresh install compiles for a few seconds).
-
-The arithmetic order of every output is fixed by the pixel alone (never by
-where a tile or band starts), which keeps the engine's promise of identical
-numbers for any chunking.
+(pooling, power, a median, a peak search). Written as numpy array expressions
+each step is a separate pass over memory, and together they cost four times
+the FFT; as one compiled call per band of rows (:func:`band_maps`) they cost
+a fraction of it. Here: the mixed-radix real FFT along time with the trend
+coefficients summed on the way, the windowed power, the noise median, the
+peak search and refinement, the kept band of the spectrum and its 16-bit
+packing. The arithmetic order of every output is fixed by the pixel alone
+(chunk invariance).
 """
 
 from __future__ import annotations
@@ -21,133 +17,12 @@ import math
 
 import numba
 import numpy as np
-from numba.core import compiler as _numba_compiler
 
-_JIT = {"nopython": True, "nogil": True, "cache": True}
-
-
-class _NoAliasCompiler(_numba_compiler.Compiler):
-    """numba's compiler, with every array argument declared not to overlap any other (LLVM ``noalias``).
-
-    LLVM vectorises a loop that reads some arrays and writes others only when
-    it can rule out overlap; with a dozen rows in one loop (an FFT butterfly)
-    the run-time checks it would need exceed its limit and the loop stays
-    scalar. Only for functions whose written arrays never share memory with
-    any other argument (numba's own parallel kernels are compiled the same
-    way). A custom compiler class is numba's documented way to change how a
-    function is compiled (``jit(pipeline_class=...)``).
-    """
-
-    def __init__(self, typingctx, targetctx, library, args, return_type, flags, locals):
-        flags = flags.copy()
-        flags.noalias = True
-        super().__init__(typingctx, targetctx, library, args, return_type, flags, locals)
+from tempofield.kernels._jit import JIT, JIT_INLINE, JIT_NOALIAS
+from tempofield.kernels._preprocess_loops import _pool_row
 
 
-_JIT_NOALIAS = {**_JIT, "pipeline_class": _NoAliasCompiler}
-
-
-@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
-def _sum_across(colsum, side, scale, rowsum, out, t, row):
-    """The second half of box pooling: ``side`` neighbouring column sums added left to right, scaled,
-    written to ``out[t, row]``."""
-    nx = rowsum.shape[0]
-    for x in range(nx):
-        rowsum[x] = colsum[x]
-    for dx in range(1, side):
-        for x in range(nx):
-            rowsum[x] += colsum[x + dx]
-    for x in range(nx):
-        out[t, row, x] = rowsum[x] * scale
-
-
-@numba.jit(**_JIT)
-def box_pool_rows(block, radius, y_start, y_stop, out):
-    """Box mean of ``block`` (T, Y + 2r, X + 2r) for output rows ``y_start:y_stop``.
-
-    Writes (T, y_stop - y_start, X) float32 into ``out``. Per pixel and frame:
-    the 2r+1 rows of each padded column are summed first (top to bottom),
-    then the 2r+1 column sums (left to right), then scaled by 1/(2r+1)^2.
-    """
-    side = 2 * radius + 1
-    width = block.shape[2]
-    nx = width - 2 * radius
-    scale = np.float32(1.0 / (side * side))
-    colsum = np.empty(width, np.float32)
-    rowsum = np.empty(nx, np.float32)
-    for t in range(block.shape[0]):
-        for y in range(y_start, y_stop):
-            # loops over whole rows innermost, so they compile to vector instructions
-            for c in range(width):
-                colsum[c] = np.float32(block[t, y, c])
-            for dy in range(1, side):
-                for c in range(width):
-                    colsum[c] += np.float32(block[t, y + dy, c])
-            _sum_across(colsum, side, scale, rowsum, out, t, y - y_start)
-
-
-@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
-def _pool_row(left, middle, right, radius, y, colsum, rowsum, out, row):
-    """Box-pooled row ``y`` of a block held as three column pieces, every frame: ``out[t, row, :]``.
-
-    Pools rows y .. y + 2r of the pieces (left strip, centre, right strip),
-    column sums first (top to bottom), then across (:func:`_sum_across`).
-    ``colsum`` holds X + 2r floats, ``rowsum`` X.
-    """
-    side = 2 * radius + 1
-    nx = middle.shape[2]
-    scale = np.float32(1.0 / (side * side))
-    col_left = colsum[:radius]
-    col_mid = colsum[radius:radius + nx]
-    col_right = colsum[radius + nx:]
-    if radius == 1:  # the default: each sum in one loop, in the same order as the general loops below
-        next1 = colsum[1:]
-        next2 = colsum[2:]
-        for t in range(middle.shape[0]):
-            r0, r1, r2 = middle[t, y], middle[t, y + 1], middle[t, y + 2]
-            col_left[0] = (np.float32(left[t, y, 0]) + np.float32(left[t, y + 1, 0])) + np.float32(left[t, y + 2, 0])
-            for c in range(nx):
-                col_mid[c] = (np.float32(r0[c]) + np.float32(r1[c])) + np.float32(r2[c])
-            col_right[0] = ((np.float32(right[t, y, 0]) + np.float32(right[t, y + 1, 0]))
-                            + np.float32(right[t, y + 2, 0]))
-            dst = out[t, row]
-            for x in range(nx):
-                dst[x] = ((colsum[x] + next1[x]) + next2[x]) * scale
-        return
-    for t in range(middle.shape[0]):
-        for c in range(radius):
-            col_left[c] = np.float32(left[t, y, c])
-        for c in range(nx):
-            col_mid[c] = np.float32(middle[t, y, c])
-        for c in range(radius):
-            col_right[c] = np.float32(right[t, y, c])
-        for dy in range(1, side):
-            for c in range(radius):
-                col_left[c] += np.float32(left[t, y + dy, c])
-            for c in range(nx):
-                col_mid[c] += np.float32(middle[t, y + dy, c])
-            for c in range(radius):
-                col_right[c] += np.float32(right[t, y + dy, c])
-        _sum_across(colsum, side, scale, rowsum, out, t, row)
-
-
-@numba.jit(**_JIT)
-def box_pool_rows_split(left, middle, right, radius, y_start, y_stop, out):
-    """:func:`box_pool_rows` of a block held as three column pieces (left strip, centre, right strip).
-
-    ``middle`` is (T, Y, X), the strips (T, Y, r); output rows y_start:y_stop
-    pool rows y .. y + 2r of the pieces, (T, y_stop - y_start, X) float32, in
-    the same arithmetic order as :func:`box_pool_rows` on the assembled block
-    (one row at a time, :func:`_pool_row`).
-    """
-    nx = middle.shape[2]
-    colsum = np.empty(nx + 2 * radius, np.float32)
-    rowsum = np.empty(nx, np.float32)
-    for y in range(y_start, y_stop):
-        _pool_row(left, middle, right, radius, y, colsum, rowsum, out, y - y_start)
-
-
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def windowed_power(sr, si, w, n_frames, coef, coef_col0, trend_re, trend_im, power, dc, col0):
     """Hann-windowed, detrended periodogram of traces from their plain rFFT.
 
@@ -205,7 +80,7 @@ def windowed_power(sr, si, w, n_frames, coef, coef_col0, trend_re, trend_im, pow
 MEDIAN_BLOCK = 64
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def noise_median(power, first, rank, out, n_cols):
     """``out[j]`` = the ``rank``-th smallest (from 0) of trace j's noise ordinates
     ``power[first + 2 i, j]``, i = 0, 1, ...: exactly the value numpy's partition puts there,
@@ -290,7 +165,7 @@ def noise_median(power, first, rank, out, n_cols):
             out[j0 + jj] = best_value[jj]
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum,
                    n_harmonics, out, n_cols, col0):
     """Per-trace peak search, refinement and periodicity on a periodogram.
@@ -301,7 +176,7 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
     before the trend was removed. Writes ``out[:, col0:col0 + n]`` of
     (8, N) float32, in the order rate_bpm, period_s, amplitude, periodicity,
     peak_score, detected, constant, mean (see
-    :func:`rhythmap.spectral.spectral_maps` for the method).
+    :func:`tempofield.kernels.spectral.spectral_maps` for the method).
     """
     n_bins = power.shape[0]
     n = n_cols
@@ -382,53 +257,20 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
         out[7, col0 + j] = dc[j] / window_sum
 
 
-@numba.jit(**_JIT)
-def add_band_to_bins(traces, weight, row_bin, col_bin, n_bin_cols, sums):
-    """Add a band of rows of traces to square bins: ``sums[:, row_bin[r] * n_bin_cols + col_bin[x]]``
-    += weight * trace, for the band's pixels (r, x) (weight 1 for a detected pixel, 0 otherwise).
-
-    ``traces`` is (T, rows, width), ``weight`` (rows, width) float32,
-    ``row_bin`` (rows,) and ``col_bin`` (width,) non-decreasing. Rows of one
-    bin row are summed first with the pixels innermost (vectorised), then
-    each run of columns of one bin is summed and added to its bin once (not
-    column by column into the same place, a chain of dependent writes).
-    """
-    n_t, n_rows, width = traces.shape
-    acc = np.empty(width, np.float32)
-    for t in range(n_t):
-        r = 0
-        while r < n_rows:
-            br = row_bin[r]
-            for x in range(width):
-                acc[x] = 0.0
-            while r < n_rows and row_bin[r] == br:
-                for x in range(width):
-                    acc[x] += traces[t, r, x] * weight[r, x]
-                r += 1
-            first = br * n_bin_cols
-            x = 0
-            while x < width:
-                bc = col_bin[x]
-                run = np.float32(0.0)
-                while x < width and col_bin[x] == bc:
-                    run += acc[x]
-                    x += 1
-                sums[t, first + bc] += run
-
 #: Traces that :func:`rfft_columns` transforms together: its two scratch
 #: buffers, 4 x (T/2) x 128 float32, stay in the core's second-level cache
 #: through every stage, and the butterflies' inner loops are 16 vectors long.
 FFT_TRACE_BLOCK = 128
 
 
-@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
+@numba.jit(**JIT_INLINE)
 def _rotate_store(yr, yi, row, b, ur, ui, wr, wi):
     """``y[row, b] = (ur + i ui) (wr + i wi)``: a butterfly output times its twiddle."""
     yr[row, b] = ur * wr - ui * wi
     yi[row, b] = ur * wi + ui * wr
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
     """One radix-``radix`` stage of a Stockham autosort FFT (decimation in frequency), traces innermost.
 
@@ -532,7 +374,7 @@ def _fft_stage(xr, xi, yr, yi, n, s, radix, tw_re, tw_im, tw_first, width):
 TREND_SUM_BLOCK = 16
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def trend_coefficients(x, basis_t, coef):
     """``coef`` (K, n) = ``basis_t`` (K, T) @ ``x`` (T, n), in a fixed order for each trace.
 
@@ -577,7 +419,7 @@ def trend_coefficients(x, basis_t, coef):
             out[j] = out[j] + x0[j] * total
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals, ar, ai, br, bi, acc, part, x0, coef):
     """The FFT of traces ``c0 .. c0 + w - 1`` of ``x`` (T, n) and their trend coefficients.
 
@@ -630,7 +472,7 @@ def _rfft_block(x, c0, w, radices, tw_first, tw_re, tw_im, basis_t, totals, ar, 
     return xr, xi
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def _unpack_real(zr, zi, w, post_re, post_im, sr, si):
     """The spectrum X[0 .. T/2] of the real traces from Z (T/2 rows), into ``sr, si`` (T/2 + 1 rows).
 
@@ -652,7 +494,7 @@ def _unpack_real(zr, zi, w, post_re, post_im, sr, si):
             si[k, b] = ei + (wr * oi + wi * orr)
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def _fft_scratch(t, n_k):
     """Scratch of :func:`_rfft_block` for T = t and K = n_k: four (T/2 + 1, block) arrays, then
     acc, part (K, block), x0 (block,)."""
@@ -664,7 +506,7 @@ def _fft_scratch(t, n_k):
             np.empty(width, np.float32))
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def _basis_totals(basis_t):
     totals = np.empty(basis_t.shape[0], np.float32)
     for k in range(basis_t.shape[0]):
@@ -672,7 +514,7 @@ def _basis_totals(basis_t):
     return totals
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def rfft_columns(x, radices, tw_first, tw_re, tw_im, post_re, post_im, spec, basis_t, coef):
     """The rFFT along axis 0 of (T, n) float32 traces, T even, T/2 a product of the ``radices`` (2, 3, 4, 5).
 
@@ -685,7 +527,7 @@ def rfft_columns(x, radices, tw_first, tw_re, tw_im, post_re, post_im, spec, bas
     butterfly runs over a whole block of traces, in the machine's widest
     vectors. Same rounding as scipy's float32 transform (about 1e-7 of the
     largest bin); the arithmetic of one trace never depends on its
-    neighbours. The tables come from :func:`rhythmap.spectral.fft_tables`.
+    neighbours. The tables come from :func:`tempofield.kernels.spectral.fft_tables`.
     """
     t, n = x.shape
     ar, ai, br, bi, acc, part, x0 = _fft_scratch(t, basis_t.shape[0])
@@ -703,7 +545,7 @@ def rfft_columns(x, radices, tw_first, tw_re, tw_im, post_re, post_im, spec, bas
                 out[2 * b + 1] = si[k, b]
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, basis_t, trend_re, trend_im,
               keep, kept, peak, out):
     """The spectral maps of a band of pooled rows, each block of traces from pooling to peak in cache.
@@ -716,7 +558,7 @@ def band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, basi
     ``kept`` (2, B, n) has rows), windowed power (:func:`windowed_power`),
     noise median (:func:`noise_median`) and peaks (:func:`spectral_block`)
     into ``out`` (8, rows * X). A block's power never leaves the core's
-    cache. ``tables`` is :func:`rhythmap.spectral.fft_tables`' tuple,
+    cache. ``tables`` is :func:`tempofield.kernels.spectral.fft_tables`' tuple,
     ``keep`` = (first bin, trend re, trend im) of the kept band and ``peak``
     = (first noise ordinate, median rank, k_lo, k_hi, trend bins,
     threshold, bin width in Hz, window sum, harmonics). The numbers are
@@ -757,7 +599,7 @@ def band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, basi
                        out, w, c0)
 
 
-@numba.jit(**_JIT_NOALIAS)
+@numba.jit(**JIT_NOALIAS)
 def kept_band(sr, si, w, first, coef, trend_re, trend_im, out, col0):
     """Bins ``first .. first + B - 1`` of the detrended traces' plain spectrum.
 
@@ -786,7 +628,7 @@ def kept_band(sr, si, w, first, coef, trend_re, trend_im, out, col0):
                 im[j] -= c * cf[j]
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def pack_fixed(block, packed, inverse):
     """Each column of a (2, B, n) float32 block as 16-bit integers under the column's own scale.
 
@@ -815,7 +657,7 @@ def pack_fixed(block, packed, inverse):
                 out[j] = np.int16(v)
 
 
-@numba.jit(**_JIT)
+@numba.jit(**JIT)
 def unpack_fixed(packed, first, inverse, out, col0):
     """Undo :func:`pack_fixed` for rows ``first .. first + B - 1`` of a (2, B_all, q) block:
     ``out[p, b, col0 + j] = packed[p, first + b, j] * inverse[j]`` for out (2, B, N) float32."""
@@ -828,159 +670,8 @@ def unpack_fixed(packed, first, inverse, out, col0):
                 dst[j] = np.float32(src[j]) * inverse[j]
 
 
-@numba.jit(**_JIT)
-def local_plane_gradient(field, ok, radius, min_points, gy, gx):
-    """Least-squares plane fit of ``field`` over each pixel's (2r+1)^2 window: ``gy``, ``gx`` (Y, X) float64.
-
-    Only pixels where ``ok`` take part (``field`` finite there). The nine
-    window sums (count, first and second moments of the coordinates, and the
-    field's sum and first moments) are box sums, taken along each row and
-    then down the columns, with the window cut at the image's edge; the
-    moments are then centred on the window's mean coordinates. A pixel not
-    ``ok``, with fewer than ``min_points`` window pixels, or whose window's
-    points lie on a line, gets NaN. See :func:`rhythmap.propagation.local_gradient`.
-    """
-    h, w = field.shape
-    n_q = 9
-    rows = np.zeros((n_q, h, w))  # box sums along each row
-    q = np.empty((n_q, w))
-    for y in range(h):
-        for x in range(w):
-            wv = 1.0 if ok[y, x] else 0.0
-            fv = field[y, x] if ok[y, x] else 0.0
-            q[0, x] = wv
-            q[1, x] = wv * y
-            q[2, x] = wv * x
-            q[3, x] = wv * y * y
-            q[4, x] = wv * x * x
-            q[5, x] = wv * x * y
-            q[6, x] = fv
-            q[7, x] = fv * y
-            q[8, x] = fv * x
-        for k in range(n_q):
-            out = rows[k, y]
-            for dx in range(-radius, radius + 1):
-                lo = max(0, -dx)
-                n_x = min(w, w - dx) - lo
-                dst = out[lo:lo + n_x]
-                shifted = q[k, lo + dx:lo + dx + n_x]  # views, so the loop index is plain (it vectorises)
-                for x in range(n_x):
-                    dst[x] += shifted[x]
-    s = np.empty((n_q, w))
-    for y in range(h):
-        for k in range(n_q):
-            for x in range(w):
-                s[k, x] = 0.0
-            for dy in range(-radius, radius + 1):
-                if 0 <= y + dy < h:
-                    src = rows[k, y + dy]
-                    for x in range(w):
-                        s[k, x] += src[x]
-        for x in range(w):
-            n = s[0, x]
-            if not ok[y, x] or n < min_points:
-                gy[y, x] = np.nan
-                gx[y, x] = np.nan
-                continue
-            my = s[1, x] / n
-            mx = s[2, x] / n
-            syy = s[3, x] - n * my * my
-            sxx = s[4, x] - n * mx * mx
-            sxy = s[5, x] - n * mx * my
-            sf = s[6, x]
-            sfy = s[7, x] - my * sf
-            sfx = s[8, x] - mx * sf
-            det = syy * sxx - sxy * sxy
-            if not abs(det) > 1e-9:
-                gy[y, x] = np.nan
-                gx[y, x] = np.nan
-                continue
-            gy[y, x] = (sxx * sfy - sxy * sfx) / det
-            gx[y, x] = (syy * sfx - sxy * sfy) / det
-
-
-@numba.jit(nopython=True, nogil=True, cache=True, inline="always")
-def _root(parent, i):
-    while parent[i] != i:
-        parent[i] = parent[parent[i]]  # path halving
-        i = parent[i]
-    return i
-
-
-@numba.jit(**_JIT)
-def rate_components(rate, ok, tol, out):
-    """Connected components of a rate map: 4-neighbours join when both are ``ok`` and
-    their rates differ by at most the smaller of their tolerances.
-
-    Writes ``out`` (Y, X) int64: -1 where not ok, else the component's number,
-    components numbered 0, 1, ... in the order of their first pixel (row by
-    row), as scipy's ``connected_components`` numbers them. Union-find with
-    the smaller pixel index as the root.
-    """
-    h, w = rate.shape
-    parent = np.arange(h * w)
-    for y in range(h):
-        for x in range(w):
-            if not ok[y, x]:
-                continue
-            i = y * w + x
-            for dy, dx in ((0, 1), (1, 0)):
-                yy, xx = y + dy, x + dx
-                if yy >= h or xx >= w or not ok[yy, xx]:
-                    continue
-                if abs(rate[y, x] - rate[yy, xx]) <= min(tol[y, x], tol[yy, xx]):
-                    a, b = _root(parent, i), _root(parent, yy * w + xx)
-                    if a < b:
-                        parent[b] = a
-                    elif b < a:
-                        parent[a] = b
-    number = np.full(h * w, -1, np.int64)
-    n = 0
-    for y in range(h):
-        for x in range(w):
-            if not ok[y, x]:
-                out[y, x] = -1
-                continue
-            r = _root(parent, y * w + x)
-            if number[r] < 0:
-                number[r] = n
-                n += 1
-            out[y, x] = number[r]
-
-
-@numba.jit(**_JIT)
-def segment_resultant(proj, out):
-    """Coherence from lock-in sums: the resultant length of the segment phases.
-
-    ``proj`` (2 + 2K, n) float32 holds each trace's products with the rows of
-    :func:`rhythmap.phase.lockin_basis`; rows 2k+2 and 2k+3 are segment k's
-    cosine and sine sums, whose phase is atan2(-sine, cosine). Writes ``out``
-    (n,) float32: |sum_k e^{i phase_k}| / K, a segment with a zero sum
-    counting as nothing.
-    """
-    n = proj.shape[1]
-    k_seg = (proj.shape[0] - 2) // 2
-    acc_re = np.zeros(n, np.float32)
-    acc_im = np.zeros(n, np.float32)
-    for k in range(k_seg):
-        re = proj[2 + 2 * k]
-        im = proj[3 + 2 * k]
-        for j in range(n):
-            m = np.sqrt(re[j] * re[j] + im[j] * im[j])
-            if m > 0:
-                acc_re[j] += re[j] / m
-                acc_im[j] -= im[j] / m
-    for j in range(n):
-        out[j] = min(np.float32(1.0), np.sqrt(acc_re[j] * acc_re[j] + acc_im[j] * acc_im[j]) / np.float32(k_seg))
-
-
 def warm_up() -> None:
-    """Compile (or load from the cache) every loop for the common input types.
-
-    The first call of each loop in a fresh install compiles it, which takes
-    seconds and holds the interpreter; front ends and the test suite call this
-    once at the start so that no analysis pays for it midway.
-    """
+    """Compile (or load from the cache) this module's loops; :func:`band_maps` for uint16 and float32."""
     spec = np.zeros((5, 3), np.complex64)
     basis_t, coef = np.ones((1, 8), np.float32), np.empty((1, 3), np.float32)
     tables = (np.array([4]), np.array([0]), np.ones(4, np.float32), np.zeros(4, np.float32),
@@ -994,23 +685,13 @@ def warm_up() -> None:
     windowed_power(sr, si, 3, 8, coef, 0, low, low, power, np.empty(3, np.float32), 0)
     kept_band(sr, si, 3, 1, coef, low, low, np.empty((2, 2, 3), np.float32), 0)
     noise_median(power, 1, 1, np.empty(3, np.float32), 3)
-    segment_resultant(np.ones((4, 3), np.float32), np.empty(3, np.float32))
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
     unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
-    local_plane_gradient(np.ones((4, 4)), np.ones((4, 4), np.bool_), 1, 3, np.empty((4, 4)), np.empty((4, 4)))
-    rate_components(np.ones((2, 2)), np.ones((2, 2), np.bool_), np.ones((2, 2)), np.empty((2, 2), np.int64))
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
                    np.empty((8, 3), np.float32), 3, 0)
-    add_band_to_bins(np.zeros((2, 2, 3), np.float32), np.ones((2, 3), np.float32), np.array([0, 0]),
-                     np.array([0, 0, 1]), 2, np.zeros((2, 2), np.float32))
     peak = (1, 1, 1, 2, 0, 1.0, 1.0, 4.0, 2)
-    # The stack's common number types; the others (and the pooling loops below for them)
-    # compile on first use, about 5 s each, once per install.
+    # The stack's common number types; the others compile on first use, about 5 s each, once per install.
     for dtype in (np.uint16, np.float32):
         band_maps(np.zeros((8, 4, 1), dtype), np.zeros((8, 4, 2), dtype), np.zeros((8, 4, 1), dtype), 1, 0, 2,
                   np.empty((8, 2, 2), np.float32), tables, basis_t, low, low, (1, low, low),
                   np.empty((2, 2, 4), np.float32), peak, np.empty((8, 4), np.float32))
-        box_pool_rows(np.zeros((2, 4, 4), dtype), 1, 0, 2, np.empty((2, 2, 2), np.float32))
-        box_pool_rows_split(np.zeros((2, 4, 1), dtype), np.zeros((2, 4, 2), dtype), np.zeros((2, 4, 1), dtype), 1,
-                            0, 2, np.empty((2, 2, 2), np.float32))
-

@@ -18,8 +18,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-from rhythmap._dtypes import as_float
-from rhythmap.errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
 
 __all__ = [
     "WindowChoice",
@@ -162,7 +162,7 @@ def sliding_window_sqdist(gram, *, dim, tau, center=True, normalize=True):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``gram`` is not a finite square matrix, ``dim``/``tau`` are not
         integers in range, or the window is longer than the recording.
 
@@ -241,7 +241,7 @@ def sliding_window_points(X, *, dim, tau, center=True, normalize=True):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``X`` is not 1-D or 2-D, or the window does not fit in the recording.
 
     Notes
@@ -316,7 +316,7 @@ def window_for_period(period_frames, *, dim=None, max_dim=21, min_dim=3,
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If the period is not a finite number above 2 frames, or the dim limits
         are inconsistent.
 
@@ -418,7 +418,7 @@ def window_pca(gram, *, dim, tau, center=True, normalize=False, n_components=Non
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         For a bad ``gram``, window or ``n_components``, or a cloud with no variance.
 
     Notes
@@ -490,7 +490,7 @@ def motion_modes(X, gram, *, dim, tau, n_modes=2, center=True):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If shapes disagree or ``n_modes`` exceeds the number of non-zero
         principal variances.
 

@@ -14,8 +14,8 @@ import numpy as np
 import scipy.fft
 import scipy.ndimage as ndi
 
-from ._dtypes import as_float
-from .errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
 
 
 def bandpass_time(frames, frame_interval_s: float, band_hz) -> np.ndarray:

@@ -14,8 +14,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._dtypes import as_float
-from .errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
 
 TWO_PI = 2.0 * np.pi
 
@@ -367,14 +367,14 @@ def lockin_from_projection(proj, basis) -> tuple[np.ndarray, np.ndarray, np.ndar
     pooled trace is the pooled products: the engine pools these few rows
     instead of every frame.
     """
-    from . import _loops
+    from tempofield.kernels import _phase_loops
 
     b = as_float(basis)
     proj = np.ascontiguousarray(proj, np.float32)
     z_re, z_im = proj[0], -proj[1]
     phase = np.mod(-np.arctan2(z_im, z_re), TWO_PI).astype(np.float32)
     coherence = np.empty(proj.shape[1], np.float32)
-    _loops.segment_resultant(proj, coherence)  # one compiled pass over the segment rows
+    _phase_loops.segment_resultant(proj, coherence)  # one compiled pass over the segment rows
     taper_sum = float(np.hypot(b[0], b[1]).sum())
     amplitude = 2.0 * np.hypot(z_re, z_im) / taper_sum
     return phase, coherence, amplitude.astype(np.float32)

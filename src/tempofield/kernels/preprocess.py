@@ -12,9 +12,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import _loops
-from ._dtypes import as_float
-from .errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
+from tempofield.kernels import _preprocess_loops
+
+# Sums of traces over square bins, for the engine's Gram bins.
+from tempofield.kernels._preprocess_loops import add_band_to_bins  # noqa: E402,F401
 
 
 def box_pool(block, radius: int) -> np.ndarray:
@@ -37,7 +40,7 @@ def box_pool(block, radius: int) -> np.ndarray:
     -----
     Separable: for each frame, the 2r+1 values down each padded column are
     summed, then 2r+1 of those column sums across, always in the same order,
-    and divided by (2r+1)^2 (one compiled loop, :mod:`rhythmap._loops`).
+    and divided by (2r+1)^2 (one compiled loop, :mod:`tempofield.kernels._spectral_loops`).
 
     Examples
     --------
@@ -69,7 +72,7 @@ def box_pool_rows(block, radius: int, y_start: int, y_stop: int, out=None) -> np
         out = np.empty(shape, np.float32)
     if x.dtype == np.bool_:
         x = x.view(np.uint8)
-    _loops.box_pool_rows(x, r, int(y_start), int(y_stop), out)
+    _preprocess_loops.box_pool_rows(x, r, int(y_start), int(y_stop), out)
     return out
 
 

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.ndimage as ndi
 from scipy.optimize import least_squares
 
-from .errors import InputError
+from tempofield.errors import InputError
 
 
 def unwrap_delay(delay_s, mask, period_s: float, start=None) -> np.ndarray:
@@ -130,7 +130,7 @@ def local_gradient(field, mask, radius: int = 3, min_points: int = 6) -> tuple[n
 
     Only pixels inside ``mask`` take part; a pixel with fewer than
     ``min_points`` valid neighbours gets NaN. Computed from local moments with
-    box sums in one compiled loop (:func:`rhythmap._loops.local_plane_gradient`),
+    box sums in one compiled loop (:func:`tempofield.kernels._propagation_loops.local_plane_gradient`),
     so it costs a few passes over the image.
 
     Examples
@@ -140,13 +140,13 @@ def local_gradient(field, mask, radius: int = 3, min_points: int = 6) -> tuple[n
     >>> round(float(gy[10, 10]), 6), round(float(gx[10, 10]), 6)
     (2.0, -0.5)
     """
-    from . import _loops
+    from tempofield.kernels import _propagation_loops
 
     f = np.ascontiguousarray(field, np.float64)
     m = np.ascontiguousarray(np.asarray(mask, bool) & np.isfinite(f))
     gy = np.empty(f.shape)
     gx = np.empty(f.shape)
-    _loops.local_plane_gradient(f, m, int(radius), float(min_points), gy, gx)
+    _propagation_loops.local_plane_gradient(f, m, int(radius), float(min_points), gy, gx)
     return gy, gx
 
 

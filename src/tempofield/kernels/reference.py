@@ -2,7 +2,7 @@
 
 :class:`RhythmReference` holds the phase of a region's rhythm sampled over
 time (from the circular coordinates of its sliding-window cloud, see
-:mod:`rhythmap.topology`), the instantaneous rate, the beat times (where the
+:mod:`tempofield.kernels.topology`), the instantaneous rate, the beat times (where the
 unwrapped phase crosses a multiple of 2 pi), the H1 diagram and loop score it
 came from, and derived beat-to-beat statistics. It round-trips through plain
 dicts for JSON. :func:`reference_from_theta` builds one from any phase series;
@@ -16,9 +16,9 @@ from dataclasses import dataclass, field, fields
 
 import numpy as np
 
-from rhythmap._dtypes import as_float
-from rhythmap.errors import InputError
-from rhythmap.topology import (
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
+from tempofield.kernels.topology import (
     circular_coordinates,
     h1_persistence,
     is_quasiperiodic,
@@ -50,7 +50,7 @@ class RhythmReference:
     diagram : (k, 2) ndarray of float64
         H1 persistence diagram the phase came from (empty if none).
     score : float
-        Loop score in ``[0, 1]`` (:func:`rhythmap.topology.loop_score`).
+        Loop score in ``[0, 1]`` (:func:`tempofield.kernels.topology.loop_score`).
     second_loop_ratio : float
         Second over first H1 persistence.
     quasi_periodic : bool
@@ -205,7 +205,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If the times are not increasing, the shapes differ, theta is not finite,
         the phase does not advance, or ``smooth_s`` is not positive.
 
@@ -260,7 +260,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
     if not span > 0:
         raise InputError(
             "theta_rad does not advance over the record (unwrapped change "
-            f"{span:.3g} rad); orient it with rhythmap.topology.orient_with_time first."
+            f"{span:.3g} rad); orient it with tempofield.kernels.topology.orient_with_time first."
         )
     mean_period_s = 2 * np.pi * (t[-1] - t[0]) / span
     if smooth_s is not None and not (np.isfinite(smooth_s) and smooth_s > 0):
@@ -325,10 +325,10 @@ def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=200, coeff=4
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If the sizes disagree, or for the errors of
-        :func:`rhythmap.topology.h1_persistence` and
-        :func:`rhythmap.topology.circular_coordinates`.
+        :func:`tempofield.kernels.topology.h1_persistence` and
+        :func:`tempofield.kernels.topology.circular_coordinates`.
 
     Notes
     -----
@@ -347,7 +347,7 @@ def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=200, coeff=4
     Examples
     --------
     >>> import numpy as np
-    >>> from rhythmap.embedding import sliding_window_sqdist
+    >>> from tempofield.kernels.embedding import sliding_window_sqdist
     >>> t = np.arange(300) * 0.02
     >>> x = np.cos(2 * np.pi * 2.0 * t)[:, None]            # 2 Hz = 120 bpm, 25 frames
     >>> d = np.sqrt(sliding_window_sqdist(x @ x.T, dim=13, tau=2))
@@ -361,7 +361,7 @@ def reference_from_distances(time_s, dist, *, dim, tau, n_landmarks=200, coeff=4
             and dim >= 2 and tau >= 1):
         raise InputError(
             f"dim and tau must be integers with dim >= 2 and tau >= 1, got dim={dim!r}, "
-            f"tau={tau!r}. Use rhythmap.embedding.window_for_period."
+            f"tau={tau!r}. Use tempofield.kernels.embedding.window_for_period."
         )
     span = (int(dim) - 1) * int(tau)
     n_windows = t.size - span

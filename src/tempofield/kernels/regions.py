@@ -1,7 +1,7 @@
 """Beating regions: which rhythmic pixels belong together, and the table that describes them.
 
 A pixel is rhythmic when its spectral peak passes the detection test of
-:mod:`rhythmap.spectral` (a stated false-alarm rate on noise). Rhythmic pixels
+:mod:`tempofield.kernels.spectral` (a stated false-alarm rate on noise). Rhythmic pixels
 that touch (4-neighbours) and beat at the same rate, within a tolerance tied
 to the frequency resolution, form one region; regions smaller than a minimum
 area are dropped (isolated false alarms and flickering debris), and holes
@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 import scipy.ndimage as ndi
 
-from . import _loops
+from tempofield.kernels import _regions_loops
 
 
 def rate_tolerance_bpm(rate_bpm, bin_bpm: float) -> np.ndarray:
@@ -58,7 +58,7 @@ def segment(rate_bpm, detected, *, bin_bpm: float, min_area_px: int) -> np.ndarr
     h, w = ok.shape
     tol = rate_tolerance_bpm(np.where(ok, rate, 0.0), bin_bpm)
     comp = np.empty((h, w), np.int64)
-    _loops.rate_components(np.ascontiguousarray(rate), np.ascontiguousarray(ok), np.ascontiguousarray(tol), comp)
+    _regions_loops.rate_components(np.ascontiguousarray(rate), np.ascontiguousarray(ok), np.ascontiguousarray(tol), comp)
     counts = np.bincount(comp[comp >= 0].ravel())
     ids = np.arange(counts.size)
     big = ids[counts >= min_area_px]
@@ -204,7 +204,7 @@ def region_mean_trace(frames, regions, label: int) -> np.ndarray:
     >>> region_mean_trace(f, lab, 1).tolist()
     [5.5, 17.5]
     """
-    from .errors import InputError
+    from tempofield.errors import InputError
 
     mask = np.asarray(regions) == int(label)
     if not mask.any():

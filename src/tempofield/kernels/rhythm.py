@@ -2,10 +2,10 @@
 
 The region's (binned) traces X (T, P) give the frame Gram matrix G = X X^T;
 the sliding window is chosen from the region's period; the windows' pairwise
-distances come from G by diagonal sums (:mod:`rhythmap.embedding`); ripser's
+distances come from G by diagonal sums (:mod:`tempofield.kernels.embedding`); ripser's
 persistence and the circular coordinate of the most persistent loop
-(:mod:`rhythmap.topology`) give the phase theta(t) that follows a drifting
-rate, from which :mod:`rhythmap.reference` reads beats and rate. Long
+(:mod:`tempofield.kernels.topology`) give the phase theta(t) that follows a drifting
+rate, from which :mod:`tempofield.kernels.reference` reads beats and rate. Long
 recordings are decimated in time before the Gram step and the phase is put
 back on every frame afterwards. Pure numpy.
 """
@@ -16,8 +16,8 @@ import math
 
 import numpy as np
 
-from . import embedding
-from .reference import RhythmReference, reference_from_distances
+from tempofield.kernels import embedding
+from tempofield.kernels.reference import RhythmReference, reference_from_distances
 
 #: The decimated period must keep at least this many frames per cycle.
 MIN_FRAMES_PER_PERIOD = 8
@@ -82,7 +82,7 @@ def window_distances(traces, frame_interval_s: float, rate_bpm: float, *, max_fr
     """Distances between the centred, unit-normalised sliding windows of some traces.
 
     Returns ``(time_s, dist, choice)``: the (decimated) frame times, the (N, N)
-    window distances and the :class:`rhythmap.embedding.WindowChoice` used.
+    window distances and the :class:`tempofield.kernels.embedding.WindowChoice` used.
     The shared first half of :func:`region_reference` and
     :func:`loop_score_of_traces`.
     """
@@ -102,7 +102,7 @@ def loop_score_of_traces(traces, frame_interval_s: float, rate_bpm: float, *, n_
     The building block of the tile-level loop-score map: the same window
     choice and distances as :func:`region_reference`, persistence only.
     """
-    from .topology import h1_persistence, loop_score
+    from tempofield.kernels.topology import h1_persistence, loop_score
 
     _, dist, _ = window_distances(traces, frame_interval_s, rate_bpm, max_frames=max_frames)
     return float(loop_score(h1_persistence(dist, n_landmarks=n_landmarks).diagram))

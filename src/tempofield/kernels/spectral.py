@@ -6,7 +6,7 @@ harmonic), the peak refined below one bin by a parabola through the log
 magnitudes, the amplitude of that component in input units, a periodicity
 score, and a detection decision with a stated false-alarm probability on white
 noise. One scipy rFFT per block; the window, the trend removal and the
-per-trace search run in compiled loops (:mod:`rhythmap._loops`). The engine
+per-trace search run in compiled loops (:mod:`tempofield.kernels._spectral_loops`). The engine
 feeds it tiles, one band of rows at a time.
 """
 
@@ -18,9 +18,12 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
-from . import _loops
-from ._dtypes import as_float
-from .errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
+from tempofield.kernels import _preprocess_loops, _spectral_loops
+
+# The kept spectra's 16-bit storage (block floating point), for the engine's temporary file.
+from tempofield.kernels._spectral_loops import pack_fixed, unpack_fixed  # noqa: E402,F401
 
 #: Columns of a tile handed to one FFT call: about a thousand traces keep the
 #: working set in cache; power-of-two widths were measured slower (DESIGN.md).
@@ -149,7 +152,7 @@ def plan_spectrum(n_frames: int, frame_interval_s: float, rate_range_bpm, *,
 
 @functools.lru_cache(maxsize=16)
 def fft_tables(n_frames: int):
-    """Radices and twiddle tables of :func:`rhythmap._loops.rfft_columns` for T = ``n_frames``,
+    """Radices and twiddle tables of :func:`tempofield.kernels._spectral_loops.rfft_columns` for T = ``n_frames``,
     or None when T is odd or T/2 has a prime factor above 5 (those go to scipy).
 
     Each stage's twiddles exp(-2 pi i p k / n) are computed in float64 from
@@ -188,10 +191,10 @@ def fft_tables(n_frames: int):
 def rfft_time(x: np.ndarray, basis_t=None, coef=None) -> np.ndarray:
     """rFFT along axis 0 of (T, n) float32 traces (C order): (T//2 + 1, n) complex64.
 
-    A compiled mixed-radix transform (:func:`rhythmap._loops.rfft_columns`)
+    A compiled mixed-radix transform (:func:`tempofield.kernels._spectral_loops.rfft_columns`)
     where T allows it; otherwise scipy's. With ``basis_t`` (K, T) float32,
     also fills ``coef`` (K, n) with ``basis_t @ x`` in an order that does
-    not depend on the other traces (:func:`rhythmap._loops.trend_coefficients`).
+    not depend on the other traces (:func:`tempofield.kernels._spectral_loops.trend_coefficients`).
 
     Examples
     --------
@@ -204,10 +207,10 @@ def rfft_time(x: np.ndarray, basis_t=None, coef=None) -> np.ndarray:
         basis_t, coef = np.zeros((0, x.shape[0]), np.float32), np.zeros((0, x.shape[1]), np.float32)
     tables = fft_tables(x.shape[0])
     if tables is None:
-        _loops.trend_coefficients(x, basis_t, coef)
+        _spectral_loops.trend_coefficients(x, basis_t, coef)
         return scipy.fft.rfft(x, axis=0)
     spec = np.empty((x.shape[0] // 2 + 1, x.shape[1]), np.complex64)
-    _loops.rfft_columns(x, *tables, spec.view(np.float32), basis_t, coef)
+    _spectral_loops.rfft_columns(x, *tables, spec.view(np.float32), basis_t, coef)
     return spec
 
 
@@ -224,7 +227,7 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
     traces : (T, n) ndarray
         Traces, one per column (float32 kept; integers become float32).
     trend_basis : (T, K) ndarray, optional
-        Orthonormal slow-trend basis (:func:`rhythmap.preprocess.trend_basis`).
+        Orthonormal slow-trend basis (:func:`tempofield.kernels.preprocess.trend_basis`).
         When given, the traces' trend components are removed in the frequency
         domain: their windowed spectrum, ``FFT(w Q) (Q^T x)``, is subtracted
         from the lowest bins, where it lies (the Hann window's side lobes fall
@@ -287,7 +290,7 @@ class SpectralKernel:
     """:func:`spectral_maps` on one block of traces, with the trend spectrum made once.
 
     The engine hands it each band of a tile's rows (:meth:`pooled_maps`),
-    which one compiled call pools and analyses (:mod:`rhythmap._loops`).
+    which one compiled call pools and analyses (:mod:`tempofield.kernels._spectral_loops`).
 
     Examples
     --------
@@ -329,15 +332,15 @@ class SpectralKernel:
         spec = rfft_time(x, basis_t=self.trend_basis_t, coef=coef)
         sr, si = np.ascontiguousarray(spec.real, np.float32), np.ascontiguousarray(spec.imag, np.float32)
         if kept is not None:
-            _loops.kept_band(sr, si, n, self.keep_band[0], coef, self.keep_re, self.keep_im, kept, 0)
-        _loops.windowed_power(sr, si, n, t, coef, 0, self.trend_re, self.trend_im, power, dc, 0)
+            _spectral_loops.kept_band(sr, si, n, self.keep_band[0], coef, self.keep_re, self.keep_im, kept, 0)
+        _spectral_loops.windowed_power(sr, si, n, t, coef, 0, self.trend_re, self.trend_im, power, dc, 0)
         return power, dc
 
     def power(self, traces):
         """Hann-windowed, detrended periodogram of (T, n) traces: ((F, n) float32, each trace's windowed sum).
 
         One plain rFFT along time; the window and the trend removal are applied
-        to the spectrum in one compiled loop (:func:`rhythmap._loops.windowed_power`),
+        to the spectrum in one compiled loop (:func:`tempofield.kernels._spectral_loops.windowed_power`),
         which equals windowing and detrending in time.
         """
         return self._spectrum_power(traces)
@@ -348,7 +351,7 @@ class SpectralKernel:
         With ``kept`` ((2, b - a, n) float32, C order) and the kernel's
         ``keep_band`` (a, b), also writes the real and imaginary parts of the
         detrended traces' plain spectrum in bins a..b-1 (for the lock-in, see
-        :func:`rhythmap.phase.band_lockin_weights`).
+        :func:`tempofield.kernels.phase.band_lockin_weights`).
         """
         x = np.asarray(traces)
         if x.dtype not in (np.uint8, np.uint16, np.int16, np.float32, np.float64):
@@ -363,10 +366,10 @@ class SpectralKernel:
 
         ``left``, ``middle``, ``right`` (T, Y, r), (T, Y, X), (T, Y, r), C
         order, one number type: output row y pools rows y .. y + 2r of the
-        pieces (:func:`rhythmap.preprocess.box_pool_rows`). The pooled traces
+        pieces (:func:`tempofield.kernels.preprocess.box_pool_rows`). The pooled traces
         are written to ``pooled`` ((T, rows, X) float32) for the caller. Returns
         (len(MAP_KEYS), rows * X) float32; ``kept`` as in :meth:`maps`. One
-        compiled call (:func:`rhythmap._loops.band_maps`) takes each block of
+        compiled call (:func:`tempofield.kernels._spectral_loops.band_maps`) takes each block of
         traces from pooling to peak search while it is in cache.
         """
         plan = self.plan
@@ -387,15 +390,15 @@ class SpectralKernel:
         out = np.empty((len(MAP_KEYS), n), np.float32)
         tables = fft_tables(t)
         if tables is not None:
-            _loops.band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, self.trend_basis_t,
+            _spectral_loops.band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, self.trend_basis_t,
                              self.trend_re, self.trend_im, keep, kept, peak, out)
             return out
         # scipy's FFT: the same loops, a step at a time over the whole band
-        _loops.box_pool_rows_split(left, middle, right, radius, y_start, y_stop, pooled)
+        _preprocess_loops.box_pool_rows_split(left, middle, right, radius, y_start, y_stop, pooled)
         power, dc = self._spectrum_power(pooled.reshape(t, n), kept if kept.shape[1] else None)
         median = np.empty(n, np.float32)
-        _loops.noise_median(power, first, rank, median, n)
-        _loops.spectral_block(power, median, dc, *peak[2:], out, n, 0)
+        _spectral_loops.noise_median(power, first, rank, median, n)
+        _spectral_loops.spectral_block(power, median, dc, *peak[2:], out, n, 0)
         return out
 
 

@@ -1,7 +1,7 @@
 """Loop strength and rhythm phase from the shape of a sliding-window cloud.
 
 Given a square distance matrix between sliding-window points (see
-:mod:`rhythmap.embedding`; note it returns *squared* distances), this module
+:mod:`tempofield.kernels.embedding`; note it returns *squared* distances), this module
 picks a few hundred landmarks by farthest-point sampling, computes the H1
 Vietoris-Rips persistence of the landmarks with ripser, turns the diagram into
 scores (one loop = one rhythm; two strong loops = a quasi-periodic rhythm), and
@@ -20,8 +20,8 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.sparse.linalg import lsqr
 
-from rhythmap._dtypes import as_float
-from rhythmap.errors import InputError
+from tempofield._dtypes import as_float
+from tempofield.errors import InputError
 
 __all__ = [
     "H1Persistence",
@@ -157,7 +157,7 @@ def greedy_landmarks(dist, n, *, start=0):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         For a bad ``dist``, ``n < 1`` or ``start`` outside ``[0, N)``.
 
     Notes
@@ -248,7 +248,7 @@ def h1_persistence(dist, *, n_landmarks=200, coeff=47, cocycles=False, start=0):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         For a bad ``dist``, ``n_landmarks < 3``, or ``coeff`` that is not an odd prime.
 
     Notes
@@ -322,7 +322,7 @@ def loop_score(diagram):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``diagram`` is not ``(k, 2)``.
 
     Notes
@@ -362,7 +362,7 @@ def second_loop_ratio(diagram):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``diagram`` is not ``(k, 2)``.
 
     Notes
@@ -403,7 +403,7 @@ def is_quasiperiodic(diagram, *, ratio=QUASIPERIODIC_RATIO, gap=QUASIPERIODIC_GA
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``diagram`` is not ``(k, 2)`` or ``ratio``/``gap`` are not positive.
 
     Notes
@@ -543,7 +543,7 @@ def circular_coordinates(dist, *, n_landmarks=200, coeff=47, rng=None, scale_fra
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         For a bad ``dist``/``coeff``/``scale_fraction``, or a cloud without H1 class.
 
     Notes
@@ -674,7 +674,7 @@ def orient_with_time(theta):
 
     Raises
     ------
-    rhythmap.errors.InputError
+    tempofield.errors.InputError
         If ``theta`` is not a finite 1-D array of at least 2 values.
 
     Notes

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import scipy.ndimage as ndi
 
-from .result import REPORT_FILE
+from tempofield.outputs.result import REPORT_FILE
 
 PREVIEW_FILE = "preview_magnified.tif"
 PREVIEW_MAX_FRAMES = 300
@@ -52,7 +52,7 @@ def render_report(result, path, stack=None) -> Path:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    from .cli import CAUTION
+    from tempofield.outputs.texts import CAUTION
 
     fig = Figure(figsize=(15, 13), dpi=90)
     FigureCanvasAgg(fig)
@@ -161,7 +161,7 @@ def render_report(result, path, stack=None) -> Path:
         ax_table.text(0.0, 0.02, "\n".join("warning: " + x for x in warnings[:4]), fontsize=8, color="tab:red",
                       va="bottom", transform=ax_table.transAxes, wrap=True)
     source = Path(str(result.input.get("identity", {}).get("source", ""))).name
-    fig.suptitle(f"rhythmap {result.version} — {source} — frame interval {result.frame_interval_s:g} s"
+    fig.suptitle(f"tempofield {result.version} — {source} — frame interval {result.frame_interval_s:g} s"
                  + (f", pixel {ps:g} µm" if ps else ""))
     fig.text(0.5, 0.004, CAUTION, ha="center", va="bottom", fontsize=8, color="0.3")
     fig.tight_layout(rect=(0, 0.015, 1, 0.97))
@@ -193,7 +193,7 @@ def preview_writer(result, stack, *, alpha: float = 10.0) -> dict:
     The band is the largest region's mean rate +-20 %. Only the preview's frames
     are read (at most ``PREVIEW_MAX_FRAMES``), so memory stays small.
     """
-    from .magnify import magnify
+    from tempofield.kernels.magnify import magnify
 
     def write(folder):
         import tifffile

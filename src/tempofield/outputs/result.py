@@ -19,8 +19,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._atomic import atomic_folder, check_replaceable
-from .errors import InputError, ResultExistsError
+from tempofield.errors import InputError, ResultExistsError
+from tempofield.io.atomic import atomic_folder, check_replaceable
 
 #: Maps of the public contract, in channel order of ``maps.ome.zarr``.
 MAP_NAMES = ("rate_bpm", "period_s", "amplitude", "periodicity", "coherence", "phase_rad", "delay_s", "regions")
@@ -112,7 +112,7 @@ class RhythmResult:
                 f"{str(dest)!r} already exists; nothing was written. Choose another output folder, "
                 "or pass overwrite=True (--overwrite on the command line) to replace it.")
         source = self.input.get("identity", {}).get("source")
-        check_replaceable(dest, is_result_folder, "rhythmap result folder",
+        check_replaceable(dest, is_result_folder, "tempofield result folder",
                           protect=[source] if source and source != "array" else [])
         with atomic_folder(dest, overwrite=overwrite) as tmp:
             self._write_into(tmp)
@@ -122,14 +122,14 @@ class RhythmResult:
         return dest
 
     def _run_record(self) -> dict[str, Any]:
-        return {"format": "rhythmap-result", "format_version": 1, "version": self.version,
+        return {"format": "tempofield-result", "format_version": 1, "version": self.version,
                 "parameters": self.parameters, "input": self.input, "timings": self.timings,
                 "frame_interval_s": self.frame_interval_s, "pixel_size_um": self.pixel_size_um,
                 "shape": list(self.shape), "summary": self.summary(),
                 "extra_maps": sorted(self.extra_maps)}
 
     def _write_into(self, folder: Path) -> None:
-        from . import omezarr
+        from tempofield.io import omezarr
 
         channels = {name: getattr(self, name) for name in MAP_NAMES}
         channels.update(self.extra_maps)
@@ -173,7 +173,7 @@ RESULT_FILES = frozenset({MAPS_FILE, REGIONS_FILE, BEATS_FILE, REFERENCES_FILE, 
 
 
 def is_result_folder(path) -> bool:
-    """True for a rhythmap result folder, complete or torn: it holds nothing but result files."""
+    """True for a tempofield result folder, complete or torn: it holds nothing but result files."""
     p = Path(path)
     if is_complete(p):
         return True
@@ -190,7 +190,7 @@ def is_complete(path) -> bool:
         rec = json.loads((Path(path) / RUN_FILE).read_text())
     except (OSError, ValueError):
         return False
-    return rec.get("format") == "rhythmap-result"
+    return rec.get("format") == "tempofield-result"
 
 
 def load_result(path) -> RhythmResult:
@@ -199,14 +199,14 @@ def load_result(path) -> RhythmResult:
     Raises
     ------
     InputError
-        If ``path`` is not a complete rhythmap result folder.
+        If ``path`` is not a complete tempofield result folder.
     """
-    from . import omezarr
-    from .reference import RhythmReference
+    from tempofield.io import omezarr
+    from tempofield.kernels.reference import RhythmReference
 
     folder = Path(path)
     if not is_complete(folder):
-        raise InputError(f"{str(folder)!r} is not a complete rhythmap result folder (no valid {RUN_FILE}).")
+        raise InputError(f"{str(folder)!r} is not a complete tempofield result folder (no valid {RUN_FILE}).")
     rec = json.loads((folder / RUN_FILE).read_text())
     channels, _ = omezarr.read_maps(folder / MAPS_FILE)
     table_path = folder / REGIONS_FILE

@@ -1,7 +1,7 @@
 """Thin glue for the region inspector: calls into the engine's kernels.
 
-A region's mean trace comes from :func:`rhythmap.regions.region_mean_trace`,
-its periodogram and peak from :mod:`rhythmap.spectral` with the analysis's own
+A region's mean trace comes from :func:`tempofield.kernels.regions.region_mean_trace`,
+its periodogram and peak from :mod:`tempofield.kernels.spectral` with the analysis's own
 plan and trend basis, so the inspector shows what the engine computed.
 """
 
@@ -9,14 +9,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from rhythmap import preprocess, spectral
-from rhythmap import regions as regions_mod
-from rhythmap.errors import InputError
-from rhythmap.options import validate_options, validate_rate_range
+from tempofield.engine.options import validate_options, validate_rate_range
+from tempofield.errors import InputError
+from tempofield.kernels import preprocess, spectral
+from tempofield.kernels import regions as regions_mod
 
 
 def region_mean_trace(frames, regions, label: int) -> np.ndarray:
-    """(T,) mean trace of one region (see :func:`rhythmap.regions.region_mean_trace`)."""
+    """(T,) mean trace of one region (see :func:`tempofield.kernels.regions.region_mean_trace`)."""
     try:
         return regions_mod.region_mean_trace(frames, regions, label)
     except InputError as exc:
@@ -27,7 +27,7 @@ def region_spectrum(trace, frame_interval_s: float, rate_range_bpm, options: dic
     """Periodogram of a region's trace as the engine sees it, and the peak it picks.
 
     The trace is detrended with the engine's slow-trend basis, windowed with
-    its Hann window, and the peak is found by :func:`rhythmap.spectral.spectral_maps`
+    its Hann window, and the peak is found by :func:`tempofield.kernels.spectral.spectral_maps`
     with the same plan (band, false alarm) as the analysis.
 
     Returns

@@ -37,7 +37,7 @@ from qtpy.QtWidgets import (
     QWidget,
 )
 
-from rhythmap.options import OPTION_BY_NAME
+from tempofield.engine.options import OPTION_BY_NAME
 
 from . import _inspect
 from ._layers import META_KEY, RESULT_KEY
@@ -65,7 +65,7 @@ def _safe(name: str) -> str:
 
 
 class RegionInspector(QWidget):
-    """Dock widget showing one region of a rhythmap result."""
+    """Dock widget showing one region of a tempofield result."""
 
     #: Emitted after the figures and table show a region (its label).
     region_shown = Signal(int)
@@ -79,7 +79,7 @@ class RegionInspector(QWidget):
 
         form = QFormLayout()
         self.result_box = QComboBox()
-        self.result_box.setToolTip("The regions layer of a rhythmap result.")
+        self.result_box.setToolTip("The regions layer of a tempofield result.")
         form.addRow("result", self.result_box)
         self.region_spin = QSpinBox()
         self.region_spin.setRange(0, 2**31 - 1)

@@ -14,14 +14,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from rhythmap.result import MAP_NAMES, MAP_UNITS, RhythmResult
+from tempofield.outputs.result import MAP_NAMES, MAP_UNITS, RhythmResult
 
 #: Labels layers show region outlines this many pixels wide, so the maps stay visible.
 REGION_CONTOUR_PX = 1
-#: Metadata key under which every rhythmap layer keeps its provenance.
-META_KEY = "rhythmap"
+#: Metadata key under which every tempofield layer keeps its provenance.
+META_KEY = "tempofield"
 #: Metadata key holding the whole RhythmResult object (tables, references, other maps).
-RESULT_KEY = "rhythmap_result"
+RESULT_KEY = "tempofield_result"
 
 VELOCITY_KEYS = ("velocity_y_um_s", "velocity_x_um_s")
 
@@ -101,7 +101,7 @@ def result_layer_data(result: RhythmResult, source: str, *, scale=None, translat
     units : (2,) sequence of str, optional
         Spatial units of those axes.
     extra_meta : dict, optional
-        More provenance for every layer's ``metadata["rhythmap"]`` (e.g. the channel).
+        More provenance for every layer's ``metadata["tempofield"]`` (e.g. the channel).
     """
     extra_meta = dict(extra_meta or {})
     run_id = uuid.uuid4().hex[:12]
@@ -170,7 +170,7 @@ def result_from_layers(layers: list[tuple]) -> RhythmResult:
     Raises
     ------
     ValueError
-        If no layer is a rhythmap map, or the layers come from different runs.
+        If no layer is a tempofield map, or the layers come from different runs.
     """
     found: dict[str, np.ndarray] = {}
     meta = None
@@ -188,7 +188,7 @@ def result_from_layers(layers: list[tuple]) -> RhythmResult:
         base = md.get(RESULT_KEY, base)
         found[info["map"]] = np.asarray(data)
     if meta is None:
-        raise ValueError("none of the selected layers is a rhythmap map; select the layers of a "
+        raise ValueError("none of the selected layers is a tempofield map; select the layers of a "
                          "result (e.g. '... · rate (bpm)' and '... · regions').")
     shape = next(iter(found.values())).shape
     maps = {}

@@ -1,9 +1,9 @@
-"""Readers: a rhythmap result folder back as map layers, and stacks with their frame interval.
+"""Readers: a tempofield result folder back as map layers, and stacks with their frame interval.
 
-A result folder (``run.json`` + ``maps.ome.zarr``, see :mod:`rhythmap.result`)
-is loaded with :func:`rhythmap.load_result` and shown as the same layers the
+A result folder (``run.json`` + ``maps.ome.zarr``, see :mod:`tempofield.outputs.result`)
+is loaded with :func:`tempofield.load_result` and shown as the same layers the
 analysis panel makes. A stack file is opened lazily by
-:func:`rhythmap.open_stack`; its frame interval and pixel size become the
+:func:`tempofield.open_stack`; its frame interval and pixel size become the
 layer's scale and metadata. Each ``get_*_reader`` returns None for paths it
 does not handle, so napari can ask other readers.
 """
@@ -12,10 +12,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from rhythmap import load_result, open_stack
-from rhythmap.errors import InputError, MissingMetadataError, StackNotFoundError
-from rhythmap.result import MAPS_FILE, RUN_FILE, is_complete
-from rhythmap.stack import TIFF_SUFFIXES, VIDEO_SUFFIXES
+from tempofield import load_result, open_stack
+from tempofield.engine.stack import TIFF_SUFFIXES, VIDEO_SUFFIXES
+from tempofield.errors import InputError, MissingMetadataError, StackNotFoundError
+from tempofield.outputs.result import MAPS_FILE, RUN_FILE, is_complete
 
 from ._layers import result_layer_data
 
@@ -27,13 +27,13 @@ def _single(path):
 
 
 def is_result_folder(path) -> bool:
-    """True for a complete rhythmap result folder."""
+    """True for a complete tempofield result folder."""
     p = Path(path)
     return p.is_dir() and (p / RUN_FILE).is_file() and (p / MAPS_FILE).exists() and is_complete(p)
 
 
 def get_result_reader(path):
-    """Return :func:`read_result` if ``path`` is a rhythmap result folder, else None."""
+    """Return :func:`read_result` if ``path`` is a tempofield result folder, else None."""
     path = _single(path)
     if path is None or not is_result_folder(path):
         return None
@@ -48,7 +48,7 @@ def read_result(path) -> list[tuple]:
     kwargs = {"scale": (ps, ps), "units": ("micrometer", "micrometer")} if ps else {}
     layers = result_layer_data(result, path.name, **kwargs)
     for _, attrs, _ in layers:
-        attrs["metadata"]["rhythmap"]["folder"] = str(path.resolve())
+        attrs["metadata"]["tempofield"]["folder"] = str(path.resolve())
     return layers
 
 

@@ -1,6 +1,6 @@
-"""Sample data: rhythmap's synthetic scenes as napari image layers with physical scale.
+"""Sample data: tempofield's synthetic scenes as napari image layers with physical scale.
 
-Each sample is made by :mod:`rhythmap.samples` / :mod:`rhythmap.synthetic`
+Each sample is made by :mod:`tempofield.scenes.samples` / :mod:`tempofield.scenes.synthetic`
 with a fixed seed; the layer's scale is (frame interval s, pixel um, pixel um)
 and its metadata carries ``frame_interval_s`` and ``pixel_size_um`` so the
 analysis panel can prefill them.
@@ -8,14 +8,14 @@ analysis panel can prefill them.
 
 from __future__ import annotations
 
-from rhythmap import samples, synthetic
+from tempofield.scenes import samples, synthetic
 
 
 def scene_layer_data(scene, name: str) -> list[tuple]:
-    """One image layer tuple for a :class:`rhythmap.synthetic.Scene`."""
+    """One image layer tuple for a :class:`tempofield.scenes.synthetic.Scene`."""
     fi, ps = float(scene.frame_interval_s), float(scene.pixel_size_um)
-    meta = {"frame_interval_s": fi, "pixel_size_um": ps, "source": f"rhythmap sample {name}",
-            "rhythmap_truth_keys": sorted(scene.truth)}
+    meta = {"frame_interval_s": fi, "pixel_size_um": ps, "source": f"tempofield sample {name}",
+            "tempofield_truth_keys": sorted(scene.truth)}
     return [(scene.frames, {"name": name, "scale": (fi, ps, ps), "metadata": meta,
                             "units": ("second", "micrometer", "micrometer"),
                             "axis_labels": ("t", "y", "x")}, "image")]

@@ -1,8 +1,8 @@
 """The analysis panel: choose a stack layer and parameters, run the engine in a thread, show the maps.
 
 The panel gathers the layer, frame interval, pixel size, rate band and the
-options of :data:`rhythmap.options.OPTIONS` (its fields are built from that
-table, never from copies of it), then drives :func:`rhythmap.engine.iter_analyze`
+options of :data:`tempofield.engine.options.OPTIONS` (its fields are built from that
+table, never from copies of it), then drives :func:`tempofield.engine.run.iter_analyze`
 in a generator ``thread_worker``: every tile the engine finishes is one yield,
 one tick of napari's progress bar, and one point where Cancel takes effect.
 Result layers are added on the main thread when the worker returns; a rerun
@@ -35,10 +35,13 @@ from qtpy.QtWidgets import (
 )
 from superqt import QCollapsible
 
-from rhythmap import engine, open_stack, options as options_mod, presets
-from rhythmap._version import __version__
-from rhythmap.errors import CancelledError, RhythmapError
-from rhythmap.options import OPTIONS, validate_options, validate_rate_range
+from tempofield import open_stack
+from tempofield._version import __version__
+from tempofield.engine import options as options_mod
+from tempofield.engine import presets
+from tempofield.engine import run as engine
+from tempofield.engine.options import OPTIONS, validate_options, validate_rate_range
+from tempofield.errors import CancelledError, TempofieldError
 
 from ._layers import META_KEY, REGION_CONTOUR_PX, result_layer_data
 
@@ -94,7 +97,7 @@ def is_stack_layer(layer) -> bool:
 
 
 class AnalysisPanel(QWidget):
-    """Dock widget: run rhythmap on an image layer and overlay the maps on it."""
+    """Dock widget: run tempofield on an image layer and overlay the maps on it."""
 
     #: Emitted on the main thread after the result layers were added (the source layer's name).
     analysis_finished = Signal(str)
@@ -262,7 +265,7 @@ class AnalysisPanel(QWidget):
         self._prefill_from_layer(name)
 
     def set_options(self, **values) -> None:
-        """Set option fields by name (as in :data:`rhythmap.options.OPTIONS`)."""
+        """Set option fields by name (as in :data:`tempofield.engine.options.OPTIONS`)."""
         for name, value in values.items():
             w = self.option_widgets[name]
             if isinstance(w, QCheckBox):
@@ -273,7 +276,7 @@ class AnalysisPanel(QWidget):
                 w.setText(str(value))
 
     def options(self) -> dict:
-        """The options as entered, validated by :func:`rhythmap.options.validate_options`."""
+        """The options as entered, validated by :func:`tempofield.engine.options.validate_options`."""
         raw = {}
         for name, w in self.option_widgets.items():
             if isinstance(w, QCheckBox):
@@ -288,14 +291,14 @@ class AnalysisPanel(QWidget):
         return validate_rate_range((self.rate_lo.value(), self.rate_hi.value()))
 
     def make_stack(self):
-        """Open the chosen layer (and channel) as an engine :class:`~rhythmap.Stack`."""
+        """Open the chosen layer (and channel) as an engine :class:`~tempofield.Stack`."""
         layer = self._layer(self.layer_box.currentText())
         if layer is None:
-            raise RhythmapError("choose an image layer with frames along the first axis, e.g. a sample "
-                                "from File > Open Sample > rhythmap.")
+            raise TempofieldError("choose an image layer with frames along the first axis, e.g. a sample "
+                                "from File > Open Sample > tempofield.")
         fi = self.frame_interval.value()
         if fi <= 0:
-            raise RhythmapError(f"layer {layer.name!r} has no frame interval; enter the seconds between "
+            raise TempofieldError(f"layer {layer.name!r} has no frame interval; enter the seconds between "
                                 "frames in 'frame interval' (50 frames per second is 0.02 s).")
         ps = self.pixel_size.value() or None
         data = layer.data[0] if layer.multiscale else layer.data
@@ -316,7 +319,7 @@ class AnalysisPanel(QWidget):
             stack = self.make_stack()
             band = self.rate_range_bpm()
             opts = self.options()
-        except RhythmapError as exc:
+        except TempofieldError as exc:
             self.status.setText(f"Not started: {exc}")
             return
         layer = self._layer(self.layer_box.currentText())
@@ -334,7 +337,7 @@ class AnalysisPanel(QWidget):
         worker.aborted.connect(lambda: self._on_stopped("cancelled"))
         worker.finished.connect(self._on_finished)
         self.worker = worker
-        self._pbar = progress(total=0, desc=f"rhythmap: {source}")
+        self._pbar = progress(total=0, desc=f"tempofield: {source}")
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
         self.status.setText(f"Analysing {source!r} ({band[0]:g}-{band[1]:g} bpm)...")
@@ -355,7 +358,7 @@ class AnalysisPanel(QWidget):
             return
         if pbar.total != tick.total:
             pbar.total = tick.total
-        pbar.set_description(f"rhythmap: {tick.stage}")
+        pbar.set_description(f"tempofield: {tick.stage}")
         if self._pbar is pbar:
             pbar.update(tick.done - pbar.n)
 

@@ -1,7 +1,7 @@
-"""Writer: maps layers from the viewer saved as a rhythmap result folder.
+"""Writer: maps layers from the viewer saved as a tempofield result folder.
 
 The result is rebuilt from the layers (see :func:`._layers.result_from_layers`)
-and written by :meth:`rhythmap.RhythmResult.save`, which writes beside the
+and written by :meth:`tempofield.RhythmResult.save`, which writes beside the
 destination and renames into place, and never replaces an existing folder.
 """
 
@@ -9,20 +9,20 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from rhythmap.errors import ResultExistsError
+from tempofield.errors import ResultExistsError
 
 from ._layers import result_from_layers
 
 
 def write_result(path: str, layer_data: list[tuple]) -> list[str]:
-    """Save the rhythmap map layers among ``layer_data`` as a result folder at ``path``.
+    """Save the tempofield map layers among ``layer_data`` as a result folder at ``path``.
 
     Raises
     ------
     ResultExistsError
         If ``path`` exists (nothing is written).
     ValueError
-        If none of the layers is a rhythmap map.
+        If none of the layers is a tempofield map.
     """
     dest = Path(path)
     if dest.exists():

@@ -1,4 +1,4 @@
-"""The shipped sample stacks: made by :mod:`rhythmap.synthetic`, written as real files.
+"""The shipped sample stacks: made by :mod:`tempofield.scenes.synthetic`, written as real files.
 
 ``well_sheet.tif``   ImageJ TIFF: a culture well with a sheet beating at 72 bpm
                      (wave from a pacemaker), a cluster at 42 bpm, a faint
@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from . import synthetic
+from tempofield.scenes import synthetic
 
 SEED = 20261202
 

@@ -1,0 +1,462 @@
+"""The stages of an analysis, each a function of the run's state.
+
+An analysis is :func:`prepare` followed by the stages in
+:data:`tempofield.engine.run.STAGES`. Every stage takes the :class:`Run`,
+reads the fields its docstring names under "Reads", fills those under
+"Writes", and is a generator: what it yields are :class:`Progress` ticks (each
+a point where the caller may cancel). A stage with nothing to do for this run
+(no regions, ``maps_only``) returns at once. Adding a stage is one function
+here, one line in ``STAGES`` and one test (DEVELOPERS.md, "Adding a stage").
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Callable, Iterator
+
+import numpy as np
+
+from tempofield._version import __version__
+from tempofield.engine import presets
+from tempofield.engine.kept import KeptSpectra, keep_spectra, kept_tasks
+from tempofield.engine.options import (
+    DEFAULT_RATE_RANGE_BPM,
+    validate_options,
+    validate_rate_range,
+)
+from tempofield.engine.processes import preload_later_stages, run_in_processes
+from tempofield.engine.stack import Stack, open_stack
+from tempofield.engine.tile_kernels import (
+    PASS1_KEYS,
+    gather_bins,
+    kept_phase_tile_kernel,
+    maps_tile_kernel,
+    phase_tile_kernel,
+)
+from tempofield.engine.tiles import (
+    Progress,
+    TilePlan,
+    active_client,
+    drain,
+    parallelism,
+    pass_tasks,
+    plan_tiles,
+)
+from tempofield.errors import CancelledError, InputError
+from tempofield.kernels import phase as phase_mod
+from tempofield.kernels import preprocess, rhythm, spectral
+from tempofield.kernels import propagation as propagation_mod
+from tempofield.kernels import regions as regions_mod
+from tempofield.kernels.reference import reference_from_theta
+from tempofield.outputs.result import RhythmResult
+
+#: Energy share of the lock-in rows the phase stage may leave out when it reads fewer
+#: of the kept bins (a tenth of phase.MAX_BAND_LEAK: the sums then stay within about
+#: 0.3 % of their norms, and coherence within a few thousandths of the second read).
+NARROW_LEAK = 1e-5
+
+
+#: Pixels at least this coherent with their reference define the earliest phase of a region.
+COHERENT = 0.5
+
+
+def tile_loop_map(traces, bin_region, results, labels, rate_map, gram_bin, frame_interval_s, opts):
+    """Loop score of every TILE_LOOP_PX square tile, from the Gram bins inside it, in worker processes.
+
+    Returns the (Y, X) map (NaN where a tile has no score) and the tiles whose
+    score could not be computed, as ((tile row, tile column), reason) pairs;
+    an error that is not a :class:`~tempofield.errors.InputError` is raised.
+    """
+    ids = np.array(sorted({b for r in results for b in r["bins"].tolist()}), np.int64)
+    by, bx = (ids >> 32) * gram_bin, (ids & 0xFFFFFFFF) * gram_bin
+    tile_id = (by // TILE_LOOP_PX) * 1_000_000 + (bx // TILE_LOOP_PX)
+    jobs = {}
+    for tid in np.unique(tile_id).tolist():
+        cols = (tile_id == tid) & (bin_region > 0)
+        if cols.sum() < 2:
+            continue
+        ty, tx = divmod(tid, 1_000_000)
+        block = rate_map[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX]
+        rate = float(np.nanmedian(block))
+        if not np.isfinite(rate):
+            continue
+        jobs[(ty, tx)] = (rhythm.loop_score_of_traces, (traces[:, cols], frame_interval_s, rate),
+                          {"n_landmarks": min(100, opts["n_landmarks"]),
+                           "max_frames": opts["max_frames_topology"]})
+    out = np.full(labels.shape, np.nan, np.float32)
+    failed = []
+    for (ty, tx), score in run_in_processes(jobs, max(1, opts["worker_processes"])):
+        if isinstance(score, InputError):
+            failed.append(((ty, tx), str(score)))
+        elif isinstance(score, BaseException):
+            raise score
+        else:
+            out[ty * TILE_LOOP_PX:(ty + 1) * TILE_LOOP_PX, tx * TILE_LOOP_PX:(tx + 1) * TILE_LOOP_PX] = score
+    return out, sorted(failed)
+
+
+#: Edge of the tiles of the optional loop-score map, pixels.
+TILE_LOOP_PX = 16
+
+
+@dataclass
+class Run:
+    """The state of one analysis, filled in stage by stage.
+
+    :func:`prepare` sets the inputs (first block); each stage writes the
+    fields of its own block. Maps are (Y, X) float32 arrays at the input's
+    size, NaN where they do not apply.
+    """
+
+    # ---- inputs, from prepare
+    stack: Stack
+    opts: dict
+    rate_range_bpm: tuple[float, float]
+    specimen: Any
+    plan: spectral.SpectralPlan
+    basis: np.ndarray
+    halo: int
+    tiles: TilePlan
+    gram_bin: int
+    cancel: Callable[[], bool] | None
+    cleanup: contextlib.ExitStack
+    t_start: float
+    timings: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)
+    # ---- maps_pass
+    tile_results: list = field(default_factory=list)
+    keep: KeptSpectra | None = None
+    phase_source: str = ""
+    maps: dict = field(default_factory=dict)
+    # ---- segmentation
+    labels: np.ndarray | None = None
+    # ---- references
+    traces: np.ndarray | None = None
+    bin_region: np.ndarray | None = None
+    references: dict = field(default_factory=dict)
+    # ---- loop_score_map
+    loop_map: np.ndarray | None = None
+    # ---- phase
+    coherence: np.ndarray | None = None
+    phase_rad: np.ndarray | None = None
+    delay_s: np.ndarray | None = None
+    # ---- propagation
+    propagation: dict = field(default_factory=dict)
+    velocity: np.ndarray | None = None
+    # ---- assemble
+    result: RhythmResult | None = None
+
+    @property
+    def analyses_regions(self) -> bool:
+        """True when the stages after segmentation have work: not maps-only, and some region."""
+        return not self.opts["maps_only"] and self.labels is not None and self.labels.max() > 0
+
+    def check_cancel(self) -> None:
+        if self.cancel is not None and self.cancel():
+            raise CancelledError("the analysis was cancelled")
+
+
+def prepare(stack, rate_range_bpm, options: dict, cancel, cleanup) -> Run:
+    """Open and check the inputs, and plan the spectrum, the trend basis and the tiles.
+
+    Raises :class:`~tempofield.errors.InputError` for anything wrong with the
+    stack, the band or the options, before any pixel is read.
+    """
+    if not isinstance(stack, Stack):
+        stack = open_stack(stack)
+    opts = validate_options(options)
+    specimen = presets.get_specimen(opts["specimen"]) if opts["specimen"] else None
+    if rate_range_bpm is None:
+        rate_range_bpm = specimen.rate_range_bpm if specimen else DEFAULT_RATE_RANGE_BPM
+    lo_hi = validate_rate_range(rate_range_bpm)
+    t_start = time.perf_counter()
+    t, y, x = stack.shape
+    plan = spectral.plan_spectrum(t, stack.frame_interval_s, lo_hi, false_alarm=opts["false_alarm"],
+                                  min_cycles=opts["min_cycles"],
+                                  trend_cutoff_fraction=opts["trend_cutoff_fraction"])
+    cutoff_hz = opts["trend_cutoff_fraction"] * lo_hi[0] / 60.0
+    basis = preprocess.trend_basis(t, stack.frame_interval_s, cutoff_hz)
+    halo = opts["pooling_radius_px"]
+    if halo and (y <= 2 * halo or x <= 2 * halo):
+        raise InputError(f"pooling_radius_px={halo} is too large for frames of {y} x {x} pixels; "
+                         f"use at most {max(0, (min(y, x) - 1) // 2)}.")
+    n_parallel, total_threads = parallelism()
+    tiles = plan_tiles(stack.data.shape, stack.data.chunks, memory_budget_mb=opts["memory_budget_mb"],
+                       halo=halo, n_parallel=n_parallel, min_tiles=2 * total_threads)
+    if not tiles.aligned and stack.data.nbytes > opts["memory_budget_mb"] * 2**20:
+        warnings.warn(
+            f"{stack.source}: the input's chunks do not hold the whole time axis {stack.data.chunks[0][:3]}..., "
+            "so the stack is regrouped in memory while it is read. For large stacks convert it once "
+            "with `tempofield convert STACK OUT.ome.zarr` and analyse the converted copy.", stacklevel=3)
+    gram_bin = max(1, math.ceil(math.sqrt(y * x / opts["gram_max_pixels"])))
+    return Run(stack=stack, opts=opts, rate_range_bpm=lo_hi, specimen=specimen, plan=plan, basis=basis,
+               halo=halo, tiles=tiles, gram_bin=gram_bin, cancel=cancel, cleanup=cleanup, t_start=t_start)
+
+
+def maps_pass(run: Run) -> Iterator[Progress]:
+    """Pass 1 over the stack: spectral maps, Gram bins and (when the phase follows) kept spectra.
+
+    Reads: ``stack``, ``plan``, ``basis``, ``tiles``, ``gram_bin``.
+    Writes: ``maps`` (the :data:`PASS1_KEYS` maps but ``constant``),
+    ``tile_results`` (per-tile Gram bins), ``keep``, ``phase_source``.
+    Raises InputError for a constant stack.
+    """
+    stack, opts = run.stack, run.opts
+    t, y, x = stack.shape
+    if not opts["maps_only"]:
+        preload_later_stages()
+    # a maps-only run needs no Gram bins
+    tile_bin = None if opts["maps_only"] else run.gram_bin
+    run.phase_source = "no phase stage (maps only)"
+    if not opts["maps_only"]:
+        if opts["phase_from_kept_spectra"]:
+            lo, hi = run.rate_range_bpm
+            band = phase_mod.kept_band_bins((lo / 60.0, hi / 60.0), run.plan.bin_hz, run.plan.n_bins)
+            run.keep, run.phase_source = keep_spectra(stack.data.shape, band, run.cleanup, active_client())
+        else:
+            run.phase_source = "phase_from_kept_spectra is off"
+    keep = run.keep
+    tasks = pass_tasks(stack.data, run.tiles, maps_tile_kernel,
+                       None if keep is None else (lambda y0, x0, ty, tx: {"keep_offset": keep.offset(y0, x0, ty)}),
+                       halo=run.halo, plan=run.plan, basis=run.basis, gram_bin=tile_bin, keep=keep)
+    results = yield from drain(tasks, "maps", run.cancel, stack.source)
+    run.timings["maps_pass_s"] = time.perf_counter() - run.t_start
+    maps = np.full((len(PASS1_KEYS), y, x), np.nan, np.float32)
+    for r in results:
+        ty, tx = r["maps"].shape[1:]
+        maps[:, r["y0"]:r["y0"] + ty, r["x0"]:r["x0"] + tx] = r["maps"]
+        del r["maps"]
+    m = dict(zip(PASS1_KEYS, maps))
+    if np.all(m.pop("constant") > 0):
+        raise InputError(
+            f"{stack.source}: no pixel changes over time (the stack is constant), so there is no rhythm to "
+            "measure. Check that the right file, channel or plane was opened.")
+    run.maps, run.tile_results = m, results
+
+
+def segmentation(run: Run) -> Iterator[Progress]:
+    """Beating regions: rate-consistent components of the detected pixels, less the pooling rim.
+
+    Reads: ``maps``. Writes: ``labels`` ((Y, X) int32, 0 = no rhythm).
+    """
+    m, opts = run.maps, run.opts
+    labels = regions_mod.segment(m["rate_bpm"], m["detected"] > 0, bin_bpm=60.0 * run.plan.bin_hz,
+                                 min_area_px=opts["min_area_px"])
+    if run.halo:
+        labels = regions_mod.relabel(regions_mod.trim_pooling_rim(labels, m["amplitude"], run.halo),
+                                     opts["min_area_px"])
+    run.labels = labels
+    return
+    yield  # a generator with no ticks
+
+
+def references(run: Run) -> Iterator[Progress]:
+    """Each region's rhythm reference (phase over time, beats, loop score) from its Gram bins.
+
+    Reads: ``tile_results``, ``labels``, ``maps["rate_bpm"]``, ``basis``.
+    Writes: ``traces`` and ``bin_region`` (the detrended bin traces and their
+    regions), ``references`` ({label: RhythmReference}); a region without a
+    reference gets a warning.
+    """
+    if not run.analyses_regions:
+        return
+    t_ref = time.perf_counter()
+    stack, opts, labels, rate_map = run.stack, run.opts, run.labels, run.maps["rate_bpm"]
+    t = stack.n_frames
+    region_ids = [int(v) for v in range(1, labels.max() + 1)]
+    yield Progress(0, len(region_ids), "references")
+    traces, bin_region = gather_bins(run.tile_results, labels, run.gram_bin)
+    for r in run.tile_results:  # the gathered copy is all that is needed from here on
+        r.pop("bin_sums", None)
+    traces = preprocess.detrend(traces, run.basis)
+    jobs = {}
+    for label in region_ids:
+        cols = bin_region == label
+        if cols.sum() < 1:
+            run.warnings.append(f"region {label}: too few pixels for a rhythm reference")
+            continue
+        rate = float(np.nanmedian(rate_map[labels == label]))
+        period_frames = 60.0 / rate / stack.frame_interval_s
+        step = rhythm.decimation_for(t, period_frames, opts["max_frames_topology"])
+        if t // step > 2 * opts["max_frames_topology"]:
+            run.warnings.append(
+                f"region {label}: the period ({period_frames:.1f} frames) is too short to decimate {t} frames "
+                f"for persistence; the step used {t // step} windows, and its memory grows with their square. "
+                "Analyse shorter segments if it runs out.")
+        jobs[label] = (rhythm.region_reference, (traces[:, cols], stack.frame_interval_s, rate),
+                       {"n_landmarks": opts["n_landmarks"], "max_frames": opts["max_frames_topology"]})
+    n_done = 0
+    for label, outcome in run_in_processes(jobs, opts["worker_processes"]):
+        n_done += 1
+        if isinstance(outcome, InputError):
+            run.warnings.append(f"region {label}: no rhythm reference ({outcome})")
+        elif isinstance(outcome, BaseException):
+            raise outcome
+        else:
+            run.references[label] = outcome
+        yield Progress(n_done, len(jobs), "references")
+        run.check_cancel()
+    run.traces, run.bin_region = traces, bin_region
+    run.timings["references_s"] = time.perf_counter() - t_ref
+
+
+def loop_score_map(run: Run) -> Iterator[Progress]:
+    """The optional map of loop scores over small square tiles (``tile_loop_map``).
+
+    Reads: ``traces``, ``bin_region``, ``tile_results``, ``labels``, ``maps["rate_bpm"]``.
+    Writes: ``loop_map``; tiles without a score are named in ``warnings``.
+    """
+    if not (run.opts["tile_loop_map"] and run.analyses_regions):
+        return
+    t_loop = time.perf_counter()
+    yield Progress(0, 1, "loop map")
+    run.loop_map, failed = tile_loop_map(run.traces, run.bin_region, run.tile_results, run.labels,
+                                         run.maps["rate_bpm"], run.gram_bin, run.stack.frame_interval_s, run.opts)
+    if failed:
+        (ty0, tx0), why = failed[0]
+        run.warnings.append(f"loop-score map: {len(failed)} tile(s) of {TILE_LOOP_PX} px have no score "
+                            f"(e.g. the tile at y={ty0 * TILE_LOOP_PX}, x={tx0 * TILE_LOOP_PX}: {why})")
+    yield Progress(1, 1, "loop map")
+    run.timings["references_s"] = run.timings.get("references_s", 0.0) + time.perf_counter() - t_loop
+
+
+def phase(run: Run) -> Iterator[Progress]:
+    """Lock-in phase and coherence of every pixel against its region's reference; activation delay.
+
+    Reads: ``references``, ``labels``, ``keep``, ``tiles``, ``basis``.
+    Writes: ``phase_rad``, ``coherence``, ``delay_s`` (NaN maps when there is
+    no reference), ``references`` (re-based on each region's earliest
+    pixels), ``phase_source``.
+    """
+    stack = run.stack
+    t, y, x = stack.shape
+    run.coherence = np.full((y, x), np.nan, np.float32)
+    run.phase_rad = np.full((y, x), np.nan, np.float32)
+    run.delay_s = np.full((y, x), np.nan, np.float32)
+    references, labels = run.references, run.labels
+    if not references:
+        if not run.opts["maps_only"]:
+            run.phase_source = "no phase stage (no region with a rhythm reference)"
+        return
+    t_phase = time.perf_counter()
+    frame_times = np.arange(t) * stack.frame_interval_s
+    thetas = {label: phase_mod.smooth_over_period(
+        phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
+        60.0 / ref.rate_mean_bpm / stack.frame_interval_s) for label, ref in references.items()}
+    rows = {label: phase_mod.lockin_basis(th) for label, th in thetas.items()}
+    # b . detrend(x) = detrend(b) . x: the second read locks raw traces in against detrended rows
+    bases = {label: preprocess.detrend(r.T, run.basis).T for label, r in rows.items()}
+    dominant = max(references, key=lambda lab: int((labels == lab).sum()))
+    yield Progress(0, run.tiles.n_tiles, "phase")
+
+    def tile_labels(y0, x0, ty, tx):
+        return {"labels": labels[y0:y0 + ty, x0:x0 + tx]}
+
+    keep = run.keep
+    if keep is not None:
+        # the kept spectra are of detrended traces, so the plain rows (compact spectra) apply
+        leak = max(phase_mod.band_lockin_weights(r, keep.band)[1] for r in rows.values())
+        if leak <= phase_mod.MAX_BAND_LEAK:
+            # read and multiply only the bins these references need
+            use = phase_mod.narrowest_band(list(rows.values()), keep.band, NARROW_LEAK)
+            weights = {label: phase_mod.band_lockin_weights(r, use) for label, r in rows.items()}
+            leak = max(w[1] for w in weights.values())
+        if leak > phase_mod.MAX_BAND_LEAK:
+            run.phase_source = (f"the references' lock-in rows leave the kept band of the spectrum "
+                                f"({leak:.1e} of their energy outside it)")
+            with contextlib.suppress(OSError):
+                os.remove(keep.path)  # free the disk before reading the stack again
+            keep = run.keep = None
+    if keep is not None:
+        run.phase_source = (f"kept spectra (bins {use[0]}-{use[1] - 1} of {keep.band[0]}-{keep.band[1] - 1}, "
+                            f"largest band leak {leak:.1e})")
+        tasks = kept_tasks(keep, run.tiles, kept_phase_tile_kernel, tile_labels, lockin_bases=bases,
+                           band_weights={label: w[0] for label, w in weights.items()}, dominant=dominant,
+                           bins=(use[0] - keep.band[0], use[1] - keep.band[0]))
+    else:
+        run.phase_source = f"second read ({run.phase_source})"
+        tasks = pass_tasks(stack.data, run.tiles, phase_tile_kernel, tile_labels,
+                           halo=run.halo, lockin_bases=bases, dominant=dominant)
+    results = yield from drain(tasks, "phase", run.cancel, stack.source)
+    phase_rad, coherence, delay_s = run.phase_rad, run.coherence, run.delay_s
+    for r in results:
+        ty, tx = r["phase"].shape
+        sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
+        phase_rad[sl] = r["phase"]
+        coherence[sl] = r["coherence"]
+    for label, ref in list(references.items()):
+        inside = labels == label
+        steady = inside & (coherence >= COHERENT)
+        # the first coherent pixel after the empty part of the circle: no coherent pixel wraps
+        phase0 = phase_mod.earliest_phase(phase_rad[steady if steady.any() else inside], quantile=0.0)
+        # Count phase from the region's earliest pixels: its lag becomes 0, and a
+        # beat is the moment the rhythm's fundamental peaks there.
+        phase_rad[inside] = np.mod(phase_rad[inside] - phase0, 2 * np.pi)
+        theta = thetas[label] - phase0
+        references[label] = ref = reference_from_theta(
+            frame_times, np.mod(theta, 2 * np.pi), diagram=ref.diagram, score=ref.score,
+            second_loop_ratio=ref.second_loop_ratio, quasi_periodic=ref.quasi_periodic,
+            window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau)
+        delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], ref.mean_period_s, 0.0)
+    run.timings["phase_pass_s"] = time.perf_counter() - t_phase
+
+
+def propagation(run: Run) -> Iterator[Progress]:
+    """Conduction velocity field and each region's plane-wave or point-source fit, from the delays.
+
+    Reads: ``delay_s``, ``labels``, ``references``. Writes: ``propagation``
+    ({label: fit values}), ``velocity`` ((Y, X, 2) in µm/s, or px/s without a
+    pixel size).
+    """
+    if not run.references:
+        return
+    periods = {label: ref.mean_period_s for label, ref in run.references.items()}
+    yield Progress(0, 1, "propagation")
+    run.check_cancel()
+    run.propagation, run.velocity = propagation_mod.region_propagation(
+        run.delay_s, run.labels, periods, run.stack.pixel_size_um, run.stack.frame_interval_s)
+    yield Progress(1, 1, "propagation")
+
+
+def assemble(run: Run) -> Iterator[Progress]:
+    """The :class:`RhythmResult`: maps, region table, plausibility warnings, provenance.
+
+    Reads: every field above. Writes: ``result``.
+    """
+    stack, opts, m = run.stack, run.opts, run.maps
+    extra = {"peak_score": m["peak_score"], "mean_intensity": m["mean"]}
+    if run.loop_map is not None:
+        extra["loop_score_tiles"] = run.loop_map
+    if run.velocity is not None:
+        extra["velocity_y_um_s"] = run.velocity[..., 0].astype(np.float32)
+        extra["velocity_x_um_s"] = run.velocity[..., 1].astype(np.float32)
+    table = regions_mod.region_table(run.labels, {"rate_bpm": m["rate_bpm"], "coherence": run.coherence,
+                                                  "amplitude": m["amplitude"]}, run.references,
+                                     pixel_size_um=stack.pixel_size_um, propagation=run.propagation)
+    if run.specimen is not None:
+        run.warnings += presets.plausibility_warnings(run.specimen, table, stack.frame_interval_s)
+    for label, ref in run.references.items():
+        if ref.quasi_periodic:
+            run.warnings.append(f"region {label}: two strong loops (second-loop ratio {ref.second_loop_ratio:.2f}): "
+                                "the motion looks quasi-periodic (two rhythms), not one beat")
+    run.result = RhythmResult(
+        rate_bpm=m["rate_bpm"], period_s=m["period_s"], amplitude=m["amplitude"],
+        periodicity=m["periodicity"], coherence=run.coherence, phase_rad=run.phase_rad,
+        delay_s=run.delay_s, regions=run.labels, region_table=table, references=run.references,
+        frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
+        parameters={"rate_range_bpm": list(run.rate_range_bpm), **opts, "warnings": run.warnings,
+                    "gram_bin_px": run.gram_bin, "tile_shape_px": list(run.tiles.tile_shape),
+                    "phase_source": run.phase_source,
+                    "velocity_unit": "um/s" if stack.pixel_size_um else "px/s"},
+        input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
+        timings={**run.timings, "total_s": time.perf_counter() - run.t_start},
+        extra_maps=extra,
+        version=__version__,
+    )
+    return
+    yield
