@@ -42,9 +42,10 @@ def test_analyze_writes_outputs_and_a_summary(tmp_path, sample_tif):
     assert np.nanmedian(np.abs(res.rate_bpm[sheet] - truth["rate_bpm"][sheet])) < 0.5
     # one line per rhythm reference: loop score, beats, mean rate and beat-to-beat variability
     lines = re.findall(r"reference (\d+): loop score ([\d.]+), (\d+) beats, mean rate ([\d.]+) bpm, "
-                       r"beat-interval CV ([\d.]+)", p.stdout)
+                       r"beat-interval CV ([\d.]+), phase from the ([a-z ,-]+)\n", p.stdout)
     assert sorted(int(m[0]) for m in lines) == sorted(res.references)
-    for label, score, beats, rate, cv in lines:
+    for label, score, beats, rate, cv, method in lines:
+        assert method == res.references[int(label)].method
         ref = res.references[int(label)]
         assert float(score) == pytest.approx(ref.score, abs=0.006)
         assert int(beats) == len(ref.beat_times_s) > 0

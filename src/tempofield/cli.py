@@ -134,7 +134,8 @@ def print_summary(result, out, stream=sys.stdout) -> None:
                      .replace("\n", "\n    "))
     for label, ref in sorted(result.references.items()):
         lines.append(f"  reference {label}: loop score {ref.score:.2f}, {len(ref.beat_times_s)} beats, "
-                     f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}")
+                     f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}, "
+                     f"phase from the {ref.method}")
     for w in result.parameters.get("warnings", []):
         lines.append(f"  warning: {w}")
     source = str(result.parameters.get("phase_source", ""))

@@ -74,6 +74,12 @@ OPTIONS: tuple[Option, ...] = (
            "Smallest beating region kept, in pixels; smaller groups of rhythmic pixels (isolated false "
            "alarms, debris) are dropped.",
            lambda v: 1 <= v <= 10**8, "an integer >= 1"),
+    Option("locked_detection", True, bool,
+           "Once a region's rhythm is known, also count the pixels beside it that follow that rhythm: a "
+           "pixel joins when its signal at the region's own beat (a lock-in, no search over rates) is "
+           "significant at the same false-alarm rate, and it touches the region. Finds faint tissue next to "
+           "bright tissue; the detection map says which pixels were found this way.",
+           None, "true or false"),
     Option("maps_only", False, bool,
            "Compute only the spectral maps (rate, period, amplitude, periodicity) in one read of the stack; "
            "skip regions' rhythm references and the per-pixel phase pass.",

@@ -22,7 +22,9 @@ STAGES = (
     stages.segmentation,     # beating regions
     stages.references,       # each region's rhythm reference (persistence, circular coordinates)
     stages.loop_score_map,   # optional: loop score over small tiles
-    stages.phase,            # lock-in phase, coherence, activation delay
+    stages.lockin,           # lock-in phase, coherence and amplitude of every pixel
+    stages.locked_detection, # faint tissue that follows a region's rhythm joins it
+    stages.activation,       # phase from each region's earliest pixels, beats, activation delay
     stages.propagation,      # conduction velocity, plane / point-source fits
     stages.assemble,         # the RhythmResult
 )

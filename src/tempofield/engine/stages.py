@@ -141,9 +141,15 @@ class Run:
     references: dict = field(default_factory=dict)
     # ---- loop_score_map
     loop_map: np.ndarray | None = None
-    # ---- phase
+    # ---- lockin
+    candidates: np.ndarray | None = None
+    thetas: dict = field(default_factory=dict)
     coherence: np.ndarray | None = None
     phase_rad: np.ndarray | None = None
+    lock_amplitude: np.ndarray | None = None
+    # ---- locked_detection
+    detection: np.ndarray | None = None
+    # ---- activation
     delay_s: np.ndarray | None = None
     # ---- propagation
     propagation: dict = field(default_factory=dict)
@@ -299,10 +305,26 @@ def references(run: Run) -> Iterator[Progress]:
             raise outcome
         else:
             run.references[label] = outcome
+            run.warnings += reference_warnings(label, outcome)
         yield Progress(n_done, len(jobs), "references")
         run.check_cancel()
     run.traces, run.bin_region = traces, bin_region
     run.timings["references_s"] = time.perf_counter() - t_ref
+
+
+def reference_warnings(label: int, ref) -> list[str]:
+    """What a region's reference says about its own making: a fallback route, or a failed self-check."""
+    out = []
+    check = ref.check or {}
+    first = (check.get("tried") or {}).get("topology")
+    if ref.method != "topology":
+        why = f" ({'; '.join(first)})" if first else ""
+        out.append(f"region {label}: the topological phase failed its self-check{why}; "
+                   f"the rhythm reference is the {ref.method}")
+    if check.get("failures"):
+        out.append(f"region {label}: no rhythm reference passed its self-check ({'; '.join(check['failures'])}); "
+                   "its beats and phase may be wrong")
+    return out
 
 
 def loop_score_map(run: Run) -> Iterator[Progress]:
@@ -325,13 +347,15 @@ def loop_score_map(run: Run) -> Iterator[Progress]:
     run.timings["references_s"] = run.timings.get("references_s", 0.0) + time.perf_counter() - t_loop
 
 
-def phase(run: Run) -> Iterator[Progress]:
-    """Lock-in phase and coherence of every pixel against its region's reference; activation delay.
+def lockin(run: Run) -> Iterator[Progress]:
+    """Lock-in of every pixel against the reference of its nearest region: phase, coherence, amplitude.
 
     Reads: ``references``, ``labels``, ``keep``, ``tiles``, ``basis``.
-    Writes: ``phase_rad``, ``coherence``, ``delay_s`` (NaN maps when there is
-    no reference), ``references`` (re-based on each region's earliest
-    pixels), ``phase_source``.
+    Writes: ``candidates`` (each pixel's nearest region with a reference),
+    ``thetas`` (each reference's phase on every frame, the smoothed and the
+    raw one), ``phase_rad`` (the lag behind the candidate's reference, not
+    yet re-based), ``coherence``, ``lock_amplitude``, ``phase_source``; the
+    phase and delay maps are NaN when there is no reference.
     """
     stack = run.stack
     t, y, x = stack.shape
@@ -345,17 +369,21 @@ def phase(run: Run) -> Iterator[Progress]:
         return
     t_phase = time.perf_counter()
     frame_times = np.arange(t) * stack.frame_interval_s
-    thetas = {label: phase_mod.smooth_over_period(
-        phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times),
-        60.0 / ref.rate_mean_bpm / stack.frame_interval_s) for label, ref in references.items()}
-    rows = {label: phase_mod.lockin_basis(th) for label, th in thetas.items()}
+    on_frames = {label: phase_mod.theta_on_frames(ref.time_s, ref.theta_rad, frame_times)
+                 for label, ref in references.items()}
+    # the lock-in rows need a phase that advances evenly within each cycle: its mean over one period
+    smooth = {label: phase_mod.smooth_over_period(on_frames[label], 60.0 / ref.rate_mean_bpm / stack.frame_interval_s)
+              for label, ref in references.items()}
+    run.thetas = {label: (smooth[label], on_frames[label]) for label in references}
+    rows = {label: phase_mod.lockin_basis(th) for label, th in smooth.items()}
     # b . detrend(x) = detrend(b) . x: the second read locks raw traces in against detrended rows
     bases = {label: preprocess.detrend(r.T, run.basis).T for label, r in rows.items()}
     dominant = max(references, key=lambda lab: int((labels == lab).sum()))
+    cand = run.candidates = regions_mod.nearest_region(labels, list(references))
     yield Progress(0, run.tiles.n_tiles, "phase")
 
     def tile_labels(y0, x0, ty, tx):
-        return {"labels": labels[y0:y0 + ty, x0:x0 + tx]}
+        return {"labels": cand[y0:y0 + ty, x0:x0 + tx]}
 
     keep = run.keep
     if keep is not None:
@@ -383,12 +411,64 @@ def phase(run: Run) -> Iterator[Progress]:
         tasks = pass_tasks(stack.data, run.tiles, phase_tile_kernel, tile_labels,
                            halo=run.halo, lockin_bases=bases, dominant=dominant)
     results = yield from drain(tasks, "phase", run.cancel, stack.source)
-    phase_rad, coherence, delay_s = run.phase_rad, run.coherence, run.delay_s
+    run.lock_amplitude = np.full((y, x), np.nan, np.float32)
     for r in results:
         ty, tx = r["phase"].shape
         sl = (slice(r["y0"], r["y0"] + ty), slice(r["x0"], r["x0"] + tx))
-        phase_rad[sl] = r["phase"]
-        coherence[sl] = r["coherence"]
+        run.phase_rad[sl] = r["phase"]
+        run.coherence[sl] = r["coherence"]
+        run.lock_amplitude[sl] = r["lock_amplitude"]
+    run.timings["phase_pass_s"] = time.perf_counter() - t_phase
+
+
+def locked_detection(run: Run) -> Iterator[Progress]:
+    """Faint tissue beside a known rhythm: pixels whose lock-in against their nearest region's
+    reference is significant, and that touch the region, join it (``locked_detection``).
+
+    The matched test: for white noise of power N per bin of the Hann-windowed
+    spectrum (the maps pass's ``noise_power``), the tapered lock-in sum z has
+    E|z|^2 = N, and |z|^2 / N is exponentially distributed; a pixel is
+    significant when |z|^2 / N > -ln(false_alarm), the per-pixel false-alarm
+    rate of the spectral detection (no search over rates, so no larger
+    threshold is needed).
+
+    Reads: ``labels``, ``candidates``, ``lock_amplitude``, ``maps``,
+    ``references``. Writes: ``detection`` ((Y, X) uint8: 0 none,
+    1 spectral, 2 reference-locked), ``labels`` (grown), and, for the
+    joined pixels, ``maps["amplitude"]`` (the lock-in amplitude; their rate
+    and period are set by :func:`activation` from the final reference).
+    """
+    m = run.maps
+    detection = np.where(m["detected"] > 0, 1, 0).astype(np.uint8)
+    run.detection = detection
+    if not run.references or not run.opts["locked_detection"]:
+        return
+    score = phase_mod.locked_score(run.lock_amplitude, m["noise_power"], run.stack.n_frames)
+    significant = np.isfinite(score) & (score > -np.log(run.opts["false_alarm"]))
+    amplitude = np.where(run.labels > 0, m["amplitude"], run.lock_amplitude)
+    grown = regions_mod.join_locked(run.labels, run.candidates, significant, amplitude, run.halo)
+    joined = (grown > 0) & (run.labels == 0)
+    if joined.any():  # (their rate and period are their reference's, set once it is final: activation)
+        m["amplitude"][joined] = run.lock_amplitude[joined]
+        detection[joined] = 2
+    run.labels = grown
+    yield Progress(1, 1, "locked detection")
+
+
+def activation(run: Run) -> Iterator[Progress]:
+    """Each region's phase counted from its earliest pixels; its beats; every pixel's activation delay.
+
+    Reads: ``phase_rad`` (raw lags), ``coherence``, ``labels``, ``thetas``,
+    ``references``. Writes: ``phase_rad`` (re-based, NaN outside regions with
+    a reference), ``references`` (beats from the re-based phase), ``delay_s``,
+    and the rate and period of pixels found by their lock-in (``detection`` 2).
+    """
+    if not run.references:
+        return
+    labels, references = run.labels, run.references
+    phase_rad, coherence = run.phase_rad, run.coherence
+    phase_rad[~np.isin(labels, list(references))] = np.nan
+    frame_times = np.arange(run.stack.n_frames) * run.stack.frame_interval_s
     for label, ref in list(references.items()):
         inside = labels == label
         steady = inside & (coherence >= COHERENT)
@@ -397,13 +477,20 @@ def phase(run: Run) -> Iterator[Progress]:
         # Count phase from the region's earliest pixels: its lag becomes 0, and a
         # beat is the moment the rhythm's fundamental peaks there.
         phase_rad[inside] = np.mod(phase_rad[inside] - phase0, 2 * np.pi)
-        theta = thetas[label] - phase0
+        smooth, raw = run.thetas[label]
+        # beats keep each cycle's own timing: the phase less its mean within-cycle unevenness
+        theta = phase_mod.even_phase(raw, smooth) - phase0
         references[label] = ref = reference_from_theta(
             frame_times, np.mod(theta, 2 * np.pi), diagram=ref.diagram, score=ref.score,
             second_loop_ratio=ref.second_loop_ratio, quasi_periodic=ref.quasi_periodic,
-            window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau)
-        delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], ref.mean_period_s, 0.0)
-    run.timings["phase_pass_s"] = time.perf_counter() - t_phase
+            window_frames=ref.window_frames, dim=ref.dim, tau=ref.tau, method=ref.method, check=ref.check)
+        run.delay_s[inside] = phase_mod.activation_delay(phase_rad[inside], ref.mean_period_s, 0.0)
+        if run.detection is not None:  # pixels found by their lock-in: the rhythm of their reference
+            locked = inside & (run.detection == 2)
+            run.maps["rate_bpm"][locked] = ref.rate_mean_bpm
+            run.maps["period_s"][locked] = 60.0 / ref.rate_mean_bpm
+    return
+    yield
 
 
 def propagation(run: Run) -> Iterator[Progress]:
@@ -430,6 +517,8 @@ def assemble(run: Run) -> Iterator[Progress]:
     """
     stack, opts, m = run.stack, run.opts, run.maps
     extra = {"peak_score": m["peak_score"], "mean_intensity": m["mean"]}
+    if run.detection is not None:
+        extra["detection"] = run.detection.astype(np.float32)
     if run.loop_map is not None:
         extra["loop_score_tiles"] = run.loop_map
     if run.velocity is not None:

@@ -212,18 +212,21 @@ def _lockin_tile(y0, x0, ty, tx, lab, present, pooled_by_ref, lockin_bases, domi
     """
     phase = np.full(ty * tx, np.nan, np.float32)
     coh = np.full(ty * tx, np.nan, np.float32)
+    amp = np.full(ty * tx, np.nan, np.float32)
     by_ref: dict[int, list[int]] = {}
     for label in present:
         by_ref.setdefault(label if label in lockin_bases else dominant, []).append(label)
     for ref_label, labels in by_ref.items():
         sel = slice(None) if len(by_ref) == 1 else np.isin(lab, labels)
-        ph, c, _ = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], lockin_bases[ref_label])
+        ph, c, a = phase_mod.lockin_from_projection(pooled_by_ref[ref_label][:, sel], lockin_bases[ref_label])
         coh[sel] = c
         phase[sel] = ph
+        amp[sel] = a
     without = [label for label in present if label not in lockin_bases]
     if without:  # no reference of their own: no phase
         phase[np.isin(lab, without)] = np.nan
-    return {"y0": y0, "x0": x0, "phase": phase.reshape(ty, tx), "coherence": coh.reshape(ty, tx)}
+    return {"y0": y0, "x0": x0, "phase": phase.reshape(ty, tx), "coherence": coh.reshape(ty, tx),
+            "lock_amplitude": amp.reshape(ty, tx)}
 
 
 def gather_bins(results, labels, gram_bin):

@@ -165,6 +165,10 @@ def noise_median(power, first, rank, out, n_cols):
             out[j0 + jj] = best_value[jj]
 
 
+#: Relative half-width of the search for a pulse train's fundamental below a harmonic peak.
+OCTAVE_SPREAD = 0.06
+
+
 @numba.jit(**JIT)
 def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, bin_hz, window_sum,
                    n_harmonics, out, n_cols, col0):
@@ -174,8 +178,8 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
     removed, of which the first n = ``n_cols`` are used; ``noise_median`` (n,)
     the median of its noise ordinates; ``dc`` (n,) each trace's windowed sum
     before the trend was removed. Writes ``out[:, col0:col0 + n]`` of
-    (8, N) float32, in the order rate_bpm, period_s, amplitude, periodicity,
-    peak_score, detected, constant, mean (see
+    (9, N) float32, in the order rate_bpm, period_s, amplitude, periodicity,
+    peak_score, detected, constant, mean, noise_power (see
     :func:`tempofield.kernels.spectral.spectral_maps` for the method).
     """
     n_bins = power.shape[0]
@@ -205,12 +209,16 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
         k = band_peak[j]
         peak = p[k]
         # Octave check: a pulse train has strong harmonics; take the lowest
-        # divisor whose bin is itself significant and not much weaker.
+        # divisor whose bin is itself significant and not much weaker. A rate
+        # that varies from beat to beat spreads each line over a few percent
+        # of its frequency (the h-th harmonic h times as wide), so the
+        # divisor's peak is sought within OCTAVE_SPREAD of k / q, at least one bin.
         for q in (3, 2):
             kq = int(np.rint(k / q))
             kq_c = min(max(kq, 1), n_bins - 2)
-            best = kq_c - 1
-            for kk in (kq_c, kq_c + 1):
+            half = max(1, int(OCTAVE_SPREAD * kq))
+            best = max(kq_c - half, 1)
+            for kk in range(best + 1, min(kq_c + half, n_bins - 2) + 1):
                 if p[kk] > p[best]:
                     best = kk
             pq = p[best]
@@ -255,6 +263,7 @@ def spectral_block(power, noise_median, dc, k_lo, k_hi, trend_bins, threshold, b
         out[5, col0 + j] = 1.0 if detected else 0.0
         out[6, col0 + j] = 1.0 if constant else 0.0
         out[7, col0 + j] = dc[j] / window_sum
+        out[8, col0 + j] = 0.0 if constant else noise
 
 
 #: Traces that :func:`rfft_columns` transforms together: its two scratch
@@ -557,7 +566,7 @@ def band_maps(left, middle, right, radius, y_start, y_stop, pooled, tables, basi
     spectrum (:func:`_unpack_real`), kept band (:func:`kept_band`, when
     ``kept`` (2, B, n) has rows), windowed power (:func:`windowed_power`),
     noise median (:func:`noise_median`) and peaks (:func:`spectral_block`)
-    into ``out`` (8, rows * X). A block's power never leaves the core's
+    into ``out`` (9, rows * X). A block's power never leaves the core's
     cache. ``tables`` is :func:`tempofield.kernels.spectral.fft_tables`' tuple,
     ``keep`` = (first bin, trend re, trend im) of the kept band and ``peak``
     = (first noise ordinate, median rank, k_lo, k_hi, trend bins,
@@ -688,10 +697,10 @@ def warm_up() -> None:
     pack_fixed(np.ones((2, 2, 3), np.float32), np.empty((2, 2, 3), np.int16), np.empty(3, np.float32))
     unpack_fixed(np.ones((2, 2, 3), np.int16), 1, np.ones(3, np.float32), np.empty((2, 1, 5), np.float32), 2)
     spectral_block(power, np.ones(3, np.float32), np.ones(3, np.float32), 1, 2, 0, 1.0, 1.0, 4.0, 2,
-                   np.empty((8, 3), np.float32), 3, 0)
+                   np.empty((9, 3), np.float32), 3, 0)
     peak = (1, 1, 1, 2, 0, 1.0, 1.0, 4.0, 2)
     # The stack's common number types; the others compile on first use, about 5 s each, once per install.
     for dtype in (np.uint16, np.float32):
         band_maps(np.zeros((8, 4, 1), dtype), np.zeros((8, 4, 2), dtype), np.zeros((8, 4, 1), dtype), 1, 0, 2,
                   np.empty((8, 2, 2), np.float32), tables, basis_t, low, low, (1, low, low),
-                  np.empty((2, 2, 4), np.float32), peak, np.empty((8, 4), np.float32))
+                  np.empty((2, 2, 4), np.float32), peak, np.empty((9, 4), np.float32))

@@ -154,6 +154,47 @@ def smooth_over_period(theta_unwrapped, period_frames: float) -> np.ndarray:
     return sm[w:w + u.size]
 
 
+def even_phase(theta_unwrapped, smoothed, n_bins: int = 32) -> np.ndarray:
+    """A phase with its average within-cycle unevenness removed, its cycle-to-cycle timing kept.
+
+    A loop's circular coordinate advances unevenly within each cycle (it
+    follows the loop's geometry), by about the same profile every cycle.
+    :func:`smooth_over_period` removes that profile but also averages each
+    cycle's timing with its neighbours' (a mean over one period halves an
+    alternation of short and long beats). Here the profile itself is
+    estimated, as the mean of ``theta - smoothed`` in ``n_bins`` bins of the
+    phase over the whole record, and subtracted: what varies from one cycle
+    to the next (the beat-to-beat intervals) is left as it was.
+
+    Parameters
+    ----------
+    theta_unwrapped, smoothed : (T,) ndarray
+        The phase at every frame and its :func:`smooth_over_period`.
+
+    Examples
+    --------
+    >>> n = np.arange(400.0)
+    >>> clock = 2 * np.pi * n / 20
+    >>> th = clock + 0.3 * np.sin(clock)          # the same wobble every cycle
+    >>> bool(np.abs(even_phase(th, smooth_over_period(th, 20.0)) - clock).max() < 0.02)
+    True
+    """
+    u = np.asarray(theta_unwrapped, float)
+    wobble = u - np.asarray(smoothed, float)
+    at = np.mod(u, TWO_PI)
+    which = np.minimum((at / TWO_PI * n_bins).astype(int), n_bins - 1)
+    counts = np.bincount(which, minlength=n_bins)
+    filled = counts > 0
+    if not filled.any():
+        return u.copy()
+    # each filled bin: the mean wobble at the mean phase of its samples; linear in between (circularly)
+    where = (np.bincount(which, weights=at, minlength=n_bins)[filled] / counts[filled])
+    profile = np.bincount(which, weights=wobble, minlength=n_bins)[filled] / counts[filled]
+    ext_x = np.concatenate([where[-1:] - TWO_PI, where, where[:1] + TWO_PI])
+    ext_p = np.concatenate([profile[-1:], profile, profile[:1]])
+    return u - np.interp(at, ext_x, ext_p)
+
+
 #: Coherence segments are Hann windows (in the reference's phase) twice this many
 #: cycles long, each starting this many cycles after the one before. Their spectra
 #: lie within +-f/SEGMENT_HOP_CYCLES of the rate f (main lobe), which is what
@@ -378,6 +419,45 @@ def lockin_from_projection(proj, basis) -> tuple[np.ndarray, np.ndarray, np.ndar
     taper_sum = float(np.hypot(b[0], b[1]).sum())
     amplitude = 2.0 * np.hypot(z_re, z_im) / taper_sum
     return phase, coherence, amplitude.astype(np.float32)
+
+
+def locked_score(amplitude, noise_power, n_frames: int) -> np.ndarray:
+    """The matched test of a known rhythm: lock-in power over the white-noise level of a spectrum bin.
+
+    Parameters
+    ----------
+    amplitude : ndarray
+        Lock-in amplitudes from :func:`lockin` (``2 |z| / sum(taper)``, with
+        the whole-record Hann taper of :func:`lockin_basis`, whose sum is T / 2).
+    noise_power : ndarray
+        White-noise power of one bin of the Hann-windowed spectrum of the same
+        traces (``noise_power`` of :func:`tempofield.kernels.spectral.spectral_maps`).
+    n_frames : int
+        T.
+
+    Returns
+    -------
+    ndarray
+        ``|z|^2 / noise_power``. For white noise E|z|^2 = sigma^2 sum(taper^2)
+        equals the bin's noise power, and ``|z|^2 / noise_power`` is
+        exponentially distributed with mean 1: ``score > -ln(p)`` has
+        probability ``p`` on noise (Kay 1998, Fundamentals of Statistical Signal
+        Processing: Detection Theory, the matched detector of a known signal
+        of unknown phase).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> th = 2 * np.pi * 1.3 * np.arange(300) * 0.04
+    >>> _, _, amp = lockin(rng.normal(size=(300, 20000)), lockin_basis(th))
+    >>> score = locked_score(amp, np.full(20000, 3 * 300 / 8), 300)   # sigma = 1: sum(w^2) = 3T/8
+    >>> round(float(score.mean()), 1), bool(abs(np.mean(score > -np.log(0.01)) - 0.01) < 0.003)
+    (1.0, True)
+    """
+    amplitude = np.asarray(amplitude, np.float64)
+    z = amplitude * (n_frames / 2.0) / 2.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return z * z / np.asarray(noise_power, np.float64)
 
 
 def earliest_phase(phase_rad, weights=None, *, quantile: float = 0.01) -> float:

@@ -61,6 +61,13 @@ class RhythmReference:
         Sliding-window coordinates and delay (frames), if any.
     smooth_s : float or None
         Smoothing window used for ``inst_rate_bpm``, in seconds.
+    method : str
+        What made the phase: ``"topology"`` (circular coordinates of the
+        sliding-window cloud) or ``"band-limited fundamental"`` (the
+        analytic-signal phase of the fundamental, the fallback); see
+        :func:`tempofield.kernels.rhythm.region_reference`.
+    check : dict
+        The self-check's measured values and its failures (empty when none ran).
     """
 
     time_s: np.ndarray
@@ -75,6 +82,8 @@ class RhythmReference:
     dim: int | None = None
     tau: int | None = None
     smooth_s: float | None = None
+    method: str = "topology"
+    check: dict = field(default_factory=dict)
 
     @property
     def beat_intervals_s(self) -> np.ndarray:
@@ -180,7 +189,7 @@ def _check_time(time_s, name="time_s"):
 
 def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
                          second_loop_ratio=0.0, quasi_periodic=False, window_frames=None,
-                         dim=None, tau=None):
+                         dim=None, tau=None, method="topology", check=None):
     """Beats, instantaneous rate and variability from a phase series theta(t).
 
     Parameters
@@ -196,7 +205,7 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
     smooth_s : float, optional
         Length in seconds of the window over which the rate is averaged; by
         default one local period (see Notes).
-    second_loop_ratio, quasi_periodic, window_frames, dim, tau : optional
+    second_loop_ratio, quasi_periodic, window_frames, dim, tau, method, check : optional
         Stored as given.
 
     Returns
@@ -288,6 +297,8 @@ def reference_from_theta(time_s, theta_rad, *, diagram, score, smooth_s=None,
         dim=None if dim is None else int(dim),
         tau=None if tau is None else int(tau),
         smooth_s=float(smooth_used),
+        method=str(method),
+        check=dict(check or {}),
     )
 
 

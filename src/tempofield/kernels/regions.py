@@ -128,6 +128,70 @@ def trim_pooling_rim(labels, amplitude, radius: int, *, ratio: float = 0.5) -> n
     return lab
 
 
+def nearest_region(labels, allowed) -> np.ndarray:
+    """Each pixel's nearest region among the ``allowed`` labels (its own label inside one of them).
+
+    Returns (Y, X) int32 labels; all zero when no allowed region exists.
+
+    Examples
+    --------
+    >>> lab = np.zeros((1, 7), np.int32); lab[0, 0] = 1; lab[0, 6] = 2
+    >>> nearest_region(lab, [1, 2]).tolist()
+    [[1, 1, 1, 1, 2, 2, 2]]
+    """
+    lab = np.asarray(labels, np.int32)
+    inside = np.isin(lab, np.asarray(list(allowed), np.int32))
+    if not inside.any():
+        return np.zeros_like(lab)
+    _, (iy, ix) = ndi.distance_transform_edt(~inside, return_indices=True)
+    return lab[iy, ix].astype(np.int32)
+
+
+def join_locked(labels, candidates, significant, amplitude, radius: int) -> np.ndarray:
+    """Regions grown by the pixels that lock in significantly to their nearest region's reference.
+
+    A pixel outside every region joins its candidate region when its
+    lock-in against that region's reference is ``significant`` and it is
+    connected (8-neighbours) to the region through such pixels: isolated
+    false alarms far from any tissue stay out. The pooling rim the grown
+    part brings is then trimmed as for spectral regions
+    (:func:`trim_pooling_rim`), from joined pixels only.
+
+    Parameters
+    ----------
+    labels, candidates : (Y, X) int
+        Regions, and each pixel's candidate region (:func:`nearest_region`).
+    significant : (Y, X) bool
+        The matched test's outcome per pixel.
+    amplitude : (Y, X) float
+        Amplitude of the rhythm's fundamental (spectral in regions, lock-in
+        elsewhere), for the rim trim.
+    radius : int
+        The pooling radius.
+
+    Examples
+    --------
+    >>> lab = np.zeros((5, 9), np.int32); lab[1:4, 1:4] = 1
+    >>> sig = np.zeros((5, 9), bool); sig[1:4, 4:6] = True; sig[2, 8] = True   # touching; isolated
+    >>> out = join_locked(lab, np.ones_like(lab), sig, np.ones((5, 9)), 0)
+    >>> int((out == 1).sum()), int(out[2, 8])
+    (15, 0)
+    """
+    lab = np.asarray(labels, np.int32)
+    cand = np.asarray(candidates, np.int32)
+    grow = (lab == 0) & (cand > 0) & np.asarray(significant, bool)
+    out = lab.copy()
+    eight = ndi.generate_binary_structure(2, 2)
+    for label in np.unique(cand[grow]).tolist():
+        comp, _ = ndi.label((lab == label) | (grow & (cand == label)), structure=eight)
+        touching = np.unique(comp[lab == label])
+        out[grow & (cand == label) & np.isin(comp, touching[touching > 0])] = label
+    if radius and (out != lab).any():
+        trimmed = trim_pooling_rim(out, amplitude, radius)
+        out[(lab == 0) & (trimmed == 0)] = 0
+    return out
+
+
 def bin_labels(regions, bin_ids, gram_bin: int) -> np.ndarray:
     """The region of each Gram bin: the label most of its pixels carry (0 if none)."""
     by = (np.asarray(bin_ids) >> 32).astype(np.int64)

@@ -42,7 +42,8 @@ TREND_LEAK_BINS = 12
 N_HARMONICS = 5
 
 #: Outputs of :func:`spectral_maps`, in the order the compiled kernel fills them.
-MAP_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean")
+MAP_KEYS = ("rate_bpm", "period_s", "amplitude", "periodicity", "peak_score", "detected", "constant", "mean",
+            "noise_power")
 
 
 @dataclass(frozen=True)
@@ -244,8 +245,11 @@ def spectral_maps(traces, plan: SpectralPlan, trend_basis=None) -> dict[str, np.
         rhythm's fundamental; NaN where not detected), ``periodicity`` in
         [0, 1] (defined for every trace), ``peak_score`` (peak power over the
         white-noise level), ``detected`` (0/1) and ``constant`` (1 where the
-        trace does not change at all; never detected) and ``mean`` (the
-        Hann-weighted mean intensity, for display).
+        trace does not change at all; never detected), ``mean`` (the
+        Hann-weighted mean intensity, for display) and ``noise_power`` (the
+        white-noise level: the mean power of a bin of the Hann-windowed
+        spectrum without a rhythm, from the median over the band, for any
+        trace; the level a lock-in against a known reference is tested at).
 
     Notes
     -----

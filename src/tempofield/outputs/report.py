@@ -138,7 +138,7 @@ def render_report(result, path, stack=None) -> Path:
         ax2.plot(ref.time_s, ref.inst_rate_bpm, color="tab:blue", lw=1.5)
         ax2.set_ylabel("instantaneous rate (bpm)", color="tab:blue")
         ax_theta.set_title(f"region {label}: {len(ref.beat_times_s)} beats (red), "
-                           f"mean {ref.rate_mean_bpm:.1f} bpm")
+                           f"mean {ref.rate_mean_bpm:.1f} bpm; phase from the {ref.method}")
     else:
         ax_theta.text(0.5, 0.5, "no rhythm reference", ha="center", transform=ax_theta.transAxes)
         ax_theta.set_title("phase and rate over time")

@@ -250,3 +250,108 @@ def _cast(frames, dtype):
         info = np.iinfo(dtype)
         return np.clip(np.rint(frames), info.min, info.max).astype(dtype)
     return frames.astype(dtype)
+
+
+# ------------------------------------------------------------------ pulse shapes and recorded signals
+def _bump(p, centre, width):
+    return np.exp(-0.5 * ((p - centre) / width) ** 2)
+
+
+def _pulse_shape(name):
+    """One beat on phase p in [0, 1): peak about 1, baseline 0 (each shape's own rule below)."""
+    shapes = {
+        # a smooth single bump
+        "smooth": lambda p: _bump(p, 0.3, 0.12),
+        # an arterial pulse: sharp upstroke, then a dicrotic wave after the notch
+        "dicrotic": lambda p: (1.0 - np.exp(-p / 0.04)) * np.exp(-p / 0.16) / 0.62 + 0.55 * _bump(p, 0.45, 0.06),
+        # two bumps of nearly equal height per beat
+        "two-bump": lambda p: _bump(p, 0.2, 0.06) + 0.85 * _bump(p, 0.55, 0.07),
+        # a near-instant upstroke and a slow decay (voltage or calcium transients)
+        "sharp": lambda p: np.where(p < 0.02, p / 0.02, np.exp(-(p - 0.02) / 0.18)),
+        # a calcium transient with a shoulder on its decay
+        "shoulder": lambda p: (1.0 - np.exp(-p / 0.03)) * np.exp(-p / 0.3) / 0.85 + 0.35 * _bump(p, 0.5, 0.1),
+    }
+    return shapes[name]
+
+
+PULSE_SHAPES = ("smooth", "dicrotic", "two-bump", "sharp", "shoulder", "alternans")
+
+
+def pulse_signal(duration_s, sample_interval_s, rate_bpm, shape="dicrotic", *, variation=0.0, rng=None):
+    """A train of pulses of a given shape with beat-to-beat variation: (times, signal, beat onsets).
+
+    Parameters
+    ----------
+    duration_s, sample_interval_s : float
+        Length of the record and its sampling interval, seconds.
+    rate_bpm : float
+        Mean rate.
+    shape : str
+        One of :data:`PULSE_SHAPES`; ``"alternans"`` is the dicrotic pulse with
+        every other beat 30 % smaller.
+    variation : float
+        Each interval is the mean period times ``1 + u``, u uniform in
+        ``[-variation, variation]``.
+    rng : int or numpy.random.Generator, optional
+
+    Returns
+    -------
+    times_s, signal : (n,) ndarray
+    onsets_s : (b,) ndarray
+        The start of every beat (phase 0 of the shape).
+    """
+    rng = np.random.default_rng(rng)
+    period = 60.0 / rate_bpm
+    n_beats = int(np.ceil(duration_s / period)) + 2
+    intervals = period * (1.0 + rng.uniform(-variation, variation, n_beats))
+    onsets = np.concatenate([[-rng.uniform(0, period)], intervals]).cumsum()
+    times = np.arange(int(round(duration_s / sample_interval_s))) * sample_interval_s
+    k = np.searchsorted(onsets, times, side="right") - 1
+    phase = (times - onsets[k]) / (onsets[k + 1] - onsets[k])
+    form = _pulse_shape("dicrotic" if shape == "alternans" else shape)
+    gain = np.where(k % 2 == 1, 0.7, 1.0) if shape == "alternans" else 1.0
+    signal = gain * form(phase)
+    onsets = onsets[(onsets >= 0) & (onsets <= times[-1])]
+    return times, signal.astype(np.float64), onsets
+
+
+def waveform_scene(times_s, signal, *, frame_interval_s=0.04, shape=(48, 48), radius_px=14.0,
+                   amplitude=60.0, baseline=800.0, noise_sd=6.0, wave_speed_px_s=400.0, bleach_fraction=0.2,
+                   pixel_size_um=2.0, dtype=np.uint16, rng=None) -> Scene:
+    """Film a 1-D signal: a tissue disc whose brightness follows it, as a travelling wave.
+
+    The signal is resampled at the frame times (linear interpolation); pixel
+    p of the disc shows it delayed by its distance from the disc's left edge
+    over ``wave_speed_px_s``. The dye bleaches by ``bleach_fraction`` over the
+    record (a faded dye beats less: the beat is scaled, the baseline is not);
+    the camera adds Gaussian noise everywhere. Used to turn recorded
+    pulses into small videos with the recording's own beat-to-beat timing.
+
+    Returns
+    -------
+    Scene
+        ``truth``: ``regions`` (the disc), ``delay_s`` (Y, X), ``signal`` the
+        resampled signal at the disc's first pixel.
+    """
+    rng = np.random.default_rng(rng)
+    times_s = np.asarray(times_s, float)
+    signal = np.asarray(signal, float)
+    signal = (signal - np.median(signal)) / max(np.percentile(signal, 99) - np.percentile(signal, 1), 1e-12)
+    y_n, x_n = shape
+    n = int((times_s[-1] - times_s[0]) / frame_interval_s)
+    frame_t = times_s[0] + np.arange(n) * frame_interval_s
+    yy, xx = np.mgrid[:y_n, :x_n]
+    cy, cx = (y_n - 1) / 2.0, (x_n - 1) / 2.0
+    disc = (yy - cy) ** 2 + (xx - cx) ** 2 <= radius_px ** 2
+    delay = np.where(disc, (xx - (cx - radius_px)) / wave_speed_px_s, np.nan)
+    frames = np.full((n, y_n, x_n), baseline, np.float64)
+    bleach = 1.0 - bleach_fraction * (frame_t - frame_t[0]) / max(frame_t[-1] - frame_t[0], 1e-12)
+    dvals = np.unique(delay[disc])
+    for d in dvals:
+        cols = disc & (delay == d)
+        frames[:, cols] += (amplitude * bleach * np.interp(frame_t - d, times_s, signal))[:, None]
+    frames += rng.normal(0.0, noise_sd, frames.shape)
+    regions = disc.astype(np.int32)
+    truth = {"regions": regions, "delay_s": np.where(disc, delay - np.nanmin(delay), np.nan).astype(np.float32),
+             "signal": np.interp(frame_t, times_s, signal), "frame_times_s": frame_t - frame_t[0]}
+    return Scene(_cast(frames, dtype), frame_interval_s, pixel_size_um, truth)
