@@ -31,13 +31,19 @@ def test_analyze_writes_outputs_and_a_summary(tmp_path, sample_tif):
     out = tmp_path / "out"
     p = run("analyze", sample_tif, "-o", out, "--rate-range", "20", "150")
     assert p.returncode == 0, p.stderr
-    assert "rate (median, IQR)" in p.stdout and "not a diagnostic device" in p.stdout
+    assert "not a diagnostic device" in p.stdout
+    # one rate line per region, never a rate pooled over regions
+    assert "rate (median, IQR)" not in p.stdout
+    per_region = dict(re.findall(r"region (\d+): rate ([\d.]+) bpm \(median", p.stdout))
     for name in ("maps.ome.zarr", "run.json", "report.png", "regions.csv", "beats.csv"):
         assert (out / name).exists(), name
     truth = np.load(sample_tif.parent / "well_sheet_truth.npz")
     import tempofield
 
     res = tempofield.load_result(out)
+    assert sorted(int(k) for k in per_region) == res.region_table["region"].tolist()
+    for _, row in res.region_table.iterrows():
+        assert float(per_region[str(int(row["region"]))]) == pytest.approx(row["rate_median_bpm"], abs=0.006)
     sheet = truth["regions"] == 1
     assert np.nanmedian(np.abs(res.rate_bpm[sheet] - truth["rate_bpm"][sheet])) < 0.5
     # one line per rhythm reference: loop score, beats, mean rate and beat-to-beat variability
@@ -156,6 +162,7 @@ def test_convert_then_analyze_gives_the_same_maps(tmp_path, sample_tif):
     z = tmp_path / "s.ome.zarr"
     assert cli.main(["convert", str(sample_tif), str(z)]) == 0
     import tempofield
+    from tempofield.outputs.result import MAP_NAMES
 
     a = tempofield.open_stack(z)
     b = tempofield.open_stack(sample_tif)
@@ -164,3 +171,14 @@ def test_convert_then_analyze_gives_the_same_maps(tmp_path, sample_tif):
     assert a.pixel_size_um == pytest.approx(b.pixel_size_um, rel=1e-6)
     np.testing.assert_array_equal(a.data.compute(), b.data.compute())
     assert cli.main(["convert", str(sample_tif), str(z)]) == 2  # refuses to overwrite
+    # The analysis of the converted store and of the original TIFF, both through the command.
+    for src, out in ((z, "from_zarr"), (sample_tif, "from_tif")):
+        p = run("analyze", src, "-o", tmp_path / out, "--rate-range", "20", "150", "--quiet")
+        assert p.returncode == 0, p.stderr
+    ra, rb = tempofield.load_result(tmp_path / "from_zarr"), tempofield.load_result(tmp_path / "from_tif")
+    assert rb.regions.max() >= 1  # the sample beats, so the comparison covers real maps
+    for name in MAP_NAMES:
+        np.testing.assert_array_equal(getattr(ra, name), getattr(rb, name), err_msg=name)
+    assert sorted(ra.references) == sorted(rb.references)
+    for label in rb.references:
+        np.testing.assert_array_equal(ra.references[label].beat_times_s, rb.references[label].beat_times_s)

@@ -1,8 +1,8 @@
 """Tests of tempofield.kernels.embedding: Gram-based sliding-window geometry.
 
-External references: explicit embedding + scipy.spatial.distance.cdist (CHECKS,
-reference-library table), scikit-learn PCA, and CHECKS #2/#3 (Perea & Harer
-2015; Takens 1981).
+External references: explicit embedding + scipy.spatial.distance.cdist, scikit-learn
+PCA, Perea & Harer 2015, Found. Comput. Math. 15:799-838 (best window) and Takens
+1981, Lecture Notes in Math. 898:366-381 (dimension needed).
 """
 
 import numpy as np
@@ -33,7 +33,7 @@ def _video(T=70, P=12, seed=0):
 @pytest.mark.parametrize("center,normalize", [(False, False), (True, False), (False, True), (True, True)])
 @pytest.mark.parametrize("dim,tau", [(2, 1), (5, 3), (8, 2), (11, 1)])
 def test_sqdist_equals_explicit_embedding_cdist(center, normalize, dim, tau):
-    # Reference: explicit embedding + scipy cdist 'sqeuclidean' (CHECKS reference table, 1e-6 relative).
+    # Reference: explicit embedding + scipy cdist 'sqeuclidean', equal to 1e-6 relative.
     X = _video()
     got = sliding_window_sqdist(X @ X.T, dim=dim, tau=tau, center=center, normalize=normalize)
     W = sliding_window_points(X, dim=dim, tau=tau, center=center, normalize=normalize)
@@ -65,7 +65,8 @@ def test_zero_norm_window_is_at_distance_sqrt2():
 
 @pytest.mark.parametrize("period", [21.0, 30.0, 42.0, 63.5, 100.0, 250.0])
 def test_window_for_period_hits_best_window(period):
-    # CHECKS #2 (Perea & Harer 2015): best window M*tau = period * M / (M + 1).
+    # Perea & Harer 2015, Found. Comput. Math. 15:799-838 (formula from memory): best window
+    # M*tau = period * M / (M + 1).
     dim, tau, window = window_for_period(period)
     m = dim - 1
     assert 3 <= dim <= 21 and tau >= 1 and window == m * tau
@@ -92,8 +93,9 @@ def test_window_pca_matches_sklearn():
     np.testing.assert_allclose(got_n, PCA(n_components=3).fit(Wn).explained_variance_ratio_, rtol=1e-8)
 
 
-def test_window_pca_dimension_check3():
-    # CHECKS #3 (Takens 1981; Perea & Harer 2015): one sinusoid -> 2 components hold
+def test_window_pca_dimension_needed():
+    # Takens 1981, Lecture Notes in Math. 898:366-381; Perea & Harer 2015, Found. Comput.
+    # Math. 15:799-838: one sinusoid -> 2 components hold
     # all the variance; cos t + cos 3t (two components) needs 4.
     t = 2 * np.pi * np.arange(400) / 40
     pattern = np.array([1.0, 0.4, -0.7])

@@ -1,8 +1,8 @@
 """Tests of tempofield.kernels.reference: phase -> beats, instantaneous rate, variability.
 
 Ground truth is set by construction (synthetic phases with a known, drifting
-rate; CHECKS: "synthetic scenes with known ground truth are fine for accuracy
-tests"). Target: beat times within 1.5 frames (DESIGN.md, Targets).
+rate, so the truth is exact). Target: beat times within 1.5 frames (the project's
+accuracy target for beat times).
 """
 
 import json

@@ -1,4 +1,10 @@
-"""Regions and propagation on synthetic scenes with known truth (DESIGN.md / issue targets)."""
+"""Regions and propagation on synthetic scenes whose truth is set by construction (scenes.synthetic).
+
+The project's accuracy targets checked here: each rhythm found as its own region,
+conduction velocity within 5 % and direction within 5 degrees (velocity from the
+activation-time or phase gradient: Bayly et al. 1998, IEEE Trans. Biomed. Eng.
+45:563-571), and no region on pure noise.
+"""
 
 from __future__ import annotations
 

@@ -85,10 +85,19 @@ def test_specimen_preset_sets_band_and_warns():
     # the synthetic wave (2000 um/s = 0.2 cm/s) is slower than such sheets conduct: flagged
     assert any("conduction velocity" in w and "Lee et al. 2012" in w for w in warned)
     assert res.parameters["rate_range_bpm"] == list(presets.SPECIMENS["hpsc-cardiomyocytes"].rate_range_bpm)
-    # 72 and 42 bpm are plausible for these cells; for a zebrafish heart they are not, and 25 fps is too slow
+    # 72 and 42 bpm are plausible for these cells; for a zebrafish heart they are not
     res = tempofield.analyze(st, (20, 150), specimen="zebrafish-heart-28c")
     text = " ".join(res.parameters["warnings"])
     assert "outside the plausible 120-225 bpm" in text and "Barrionuevo" in text
-    assert "frame rate" in text or res.frame_interval_s < 60 / 2 / 225
+    # The frame-rate warning: rates up to 225 bpm (3.75 Hz) need more than 7.5 frames per second, a
+    # frame interval below 60 / 2 / 225 s (Shannon 1949, Proc. IRE 37:10-21). 25 fps is enough: no warning.
+    limit_s = 60 / 2 / 225
+    assert res.frame_interval_s < limit_s
+    assert "frame rate" not in text
+    # ...while the same preset warns once frames are further apart than that limit.
+    zebrafish = presets.SPECIMENS["zebrafish-heart-28c"]
+    for dt, warns in ((0.99 * limit_s, False), (1.01 * limit_s, True), (0.2, True)):
+        got = presets.plausibility_warnings(zebrafish, res.region_table, dt)
+        assert any("frame rate" in w and "too low" in w for w in got) == warns, dt
     with pytest.raises(tempofield.errors.InputError, match="known presets"):
         presets.get_specimen("frog")

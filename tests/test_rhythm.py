@@ -63,7 +63,7 @@ def test_drifting_rate_followed_by_the_reference(ramp):
 
 @pytest.mark.parametrize("speed_um_s", [6000.0, 550.0])
 def test_plane_wave_activation_delay_and_coherence(speed_um_s):
-    """Circular RMS error of the activation delay <= 2 % of the period (DESIGN.md target).
+    """Circular RMS error of the activation delay <= 2 % of the period (the project's accuracy target).
 
     A fast wave crosses the sheet in 8 % of the period; a slow one in 88 %, so
     the delays fill most of the circle and a delay map off by a scale factor
@@ -102,7 +102,8 @@ def test_coherence_high_on_tissue_low_off_it(well):
 
 
 def test_pixel_cap_of_the_gram_does_not_change_the_rhythm(well):
-    """DESIGN.md cost note: binning the Gram pixels under a cap keeps persistence and theta(t)."""
+    """Binning the Gram pixels under a cap (the full-resolution Gram X X^T costs 2 T^2 P flops)
+keeps the persistence and theta(t)."""
     st = tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0)
     full = tempofield.analyze(st, (20, 150), gram_max_pixels=10**6)
     capped = tempofield.analyze(st, (20, 150), gram_max_pixels=150)

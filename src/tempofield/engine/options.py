@@ -11,6 +11,7 @@ import math
 from dataclasses import dataclass
 from typing import Any, Callable
 
+from tempofield.engine.presets import SPECIMENS
 from tempofield.errors import InputError
 
 
@@ -31,15 +32,12 @@ class Option:
 DEFAULT_RATE_RANGE_BPM = (20.0, 240.0)
 
 
-def _specimen_names():
-    from tempofield.engine.presets import SPECIMENS
-
-    return SPECIMENS
-
-
 def _positive(v) -> bool:
     return v > 0 and math.isfinite(v)
 
+
+#: The preset names, as the help text and the error for an unknown name list them.
+_SPECIMENS = ", ".join(SPECIMENS)
 
 OPTIONS: tuple[Option, ...] = (
     Option("pooling_radius_px", 1, int,
@@ -48,32 +46,44 @@ OPTIONS: tuple[Option, ...] = (
            lambda v: 0 <= v <= 32, "an integer from 0 to 32"),
     Option("false_alarm", 1e-3, float,
            "Probability that a pixel of pure white noise is reported as rhythmic (per pixel).",
-           lambda v: 0 < v < 0.5, "a number between 0 and 0.5 (e.g. 0.001)"),
+           lambda v: 0 < v < 0.5, "a number above 0 and below 0.5 (e.g. 0.001)"),
     Option("trend_cutoff_fraction", 0.5, float,
            "Slow trends (bleaching, drift) below this fraction of the lowest rate are removed.",
-           lambda v: 0 < v <= 0.9, "a number in (0, 0.9]"),
+           lambda v: 0 < v <= 0.9, "a number above 0 and at most 0.9"),
     Option("memory_budget_mb", 512, float,
            "Working memory (MB) shared by the tiles analysed at the same time (one per thread); sets the "
            "tile size.",
-           lambda v: 16 <= v <= 1e6, "a number of megabytes >= 16"),
+           lambda v: 16 <= v <= 1e6, "a number of megabytes from 16 to 1000000 (1 TB)"),
     Option("min_cycles", 3.0, float,
            "The recording must span at least this many cycles of the slowest rate in the band.",
-           lambda v: v >= 2, "a number >= 2"),
+           lambda v: v >= 2, "a number from 2 up, with no upper limit (but the recording must span that many "
+                             "cycles of the slowest rate)"),
     Option("gram_max_pixels", 20000, int,
-           "Cap on the number of (binned) pixels that enter the frame Gram matrix of the rhythm "
-           "reference; the bin size grows until the beating pixels fit under it.",
-           lambda v: 100 <= v <= 10**7, "an integer >= 100"),
+           "Most pixels each beating region's rhythm reference (the beat timing its phase and beats are "
+           "measured against) is built from. In larger regions neighbouring pixels are averaged in small "
+           "squares until they fit. Higher: the reference uses finer detail, but the analysis takes more "
+           "memory (it grows with this number times the number of frames) and more time. Lower: faster and "
+           "leaner on very large fields. The default suits most recordings; lower it if a large field runs "
+           "out of memory.",
+           lambda v: 100 <= v <= 10**7, "an integer from 100 to 10000000"),
     Option("n_landmarks", 200, int,
-           "Number of landmark windows used for persistent homology and circular coordinates.",
+           "How many moments of the recording are compared with each other to find each region's repeating "
+           "beat cycle (its loop score and the timing of its beats). More: a steadier loop score and beat "
+           "timing on long or irregular recordings, but that step takes longer (its time grows faster than "
+           "this number). Fewer: faster, a little noisier. The default suits most recordings; try 300 to 400 "
+           "if the loop score of similar recordings varies a lot.",
            lambda v: 20 <= v <= 2000, "an integer from 20 to 2000"),
     Option("max_frames_topology", 1500, int,
-           "Longest series of windows given to persistence; longer recordings are decimated and the "
-           "phase is extended to every frame afterwards.",
+           "Most frames the cycle-finding step (loop score, beat timing of each region) looks at. Longer "
+           "recordings are thinned for that step only (every 2nd, 3rd ... frame, keeping enough frames per "
+           "beat); beat times and phase maps are still given for every frame. Its memory grows with the "
+           "square of this number: lower it if that step runs out of memory on long recordings, raise it if "
+           "fast beats in long recordings get a low loop score.",
            lambda v: 100 <= v <= 20000, "an integer from 100 to 20000"),
     Option("min_area_px", 25, int,
            "Smallest beating region kept, in pixels; smaller groups of rhythmic pixels (isolated false "
            "alarms, debris) are dropped.",
-           lambda v: 1 <= v <= 10**8, "an integer >= 1"),
+           lambda v: 1 <= v <= 10**8, "an integer from 1 to 100000000"),
     Option("locked_detection", True, bool,
            "Once a region's rhythm is known, also count the pixels beside it that follow that rhythm: a "
            "pixel joins when its signal at the region's own beat (a lock-in, no search over rates) is "
@@ -86,23 +96,28 @@ OPTIONS: tuple[Option, ...] = (
            None, "true or false"),
     Option("specimen", "", str,
            "Specimen preset (sets the rate band when none is given and warns about implausible results): "
-           "hpsc-cardiomyocytes, zebrafish-heart-28c, mouse-heart, airway-cilia; empty for none.",
-           lambda v: v == "" or v in _specimen_names(), "one of the preset names or empty"),
+           f"{_SPECIMENS}; empty for none.",
+           lambda v: v == "" or v in SPECIMENS, f"one of the specimen presets {_SPECIMENS}, or empty for none"),
     Option("magnified_preview", False, bool,
            "Also write preview_magnified.tif: the first frames with the detected rhythm's band amplified "
            "(linear Eulerian magnification) so a subtle beat becomes visible.",
            None, "true or false"),
     Option("worker_processes", 0, int,
-           "Worker processes for the persistent-homology steps (rhythm references, tile loop map); 0 runs "
-           "them in the calling thread. Processes keep a GUI responsive (ripser holds Python's GIL); a "
-           "script using them needs the usual `if __name__ == \"__main__\":` guard. On a dask.distributed "
-           "cluster these steps go to its workers instead.",
+           "Helper programs that run the cycle-finding step (each region's rhythm reference, and the tile "
+           "loop-score map) beside the main one. 0 runs that step in the main program: simplest, and as fast "
+           "for the command line and scripts. In the napari viewer, 1 keeps the viewer responding instead of "
+           "freezing while that step runs. More than 1 helps only when there are many beating regions; each "
+           "helper takes about 0.3 GB of memory and a few seconds to start the first time. On a dask cluster "
+           "that step runs on the cluster's workers instead.",
            lambda v: 0 <= v <= 256, "an integer from 0 to 256"),
     Option("phase_from_kept_spectra", True, bool,
-           "Keep the band of every pixel's spectrum that the lock-in needs (in a temporary file) during the "
-           "maps pass, and compute the phase maps from it instead of reading the stack a second time. The "
-           "stack is read again anyway when a reference's spectrum leaves that band, when the temporary "
-           "directory lacks the space, or when the cluster's workers do not share this machine's disk.",
+           "On: while the stack is read for the first maps, keep the part of every pixel's signal that the "
+           "phase maps need in a temporary file (in the temporary folder, deleted when the analysis ends), so "
+           "the stack is read only once: faster, above all for large files on network or slow disks. Off: the "
+           "stack is read a second time for the phase maps instead; the maps agree to within 0.001 radians. "
+           "Turn it off when the temporary folder's disk is small or slow. The stack is read twice anyway when "
+           "that folder lacks space, when a region's rhythm is too irregular for the kept part, or when the "
+           "cluster's workers do not share this computer's disk.",
            None, "true or false"),
     Option("tile_loop_map", False, bool,
            "Also compute a tile-level loop-score map (16x16 pixel tiles), in worker processes (at least one).",
@@ -151,7 +166,8 @@ def validate_options(options: dict[str, Any] | None = None) -> dict[str, Any]:
     ------
     InputError
         If a name is unknown or a value is out of range; the message names the
-        option, the value and what is allowed.
+        option (by its Python name: the command line shows its flag instead),
+        the value and what is allowed, with both limits.
 
     Examples
     --------
@@ -167,9 +183,11 @@ def validate_options(options: dict[str, Any] | None = None) -> dict[str, Any]:
         try:
             conv = _coerce(opt, value)
         except (TypeError, ValueError):
-            raise InputError(f"option {name}={value!r} is not {opt.allowed}.") from None
+            raise InputError(f"{name}={value!r} is not {opt.allowed}.") from None
         if opt.check is not None and not opt.check(conv):
-            raise InputError(f"option {name}={value!r} is out of range: use {opt.allowed}.")
+            if opt.kind is str:
+                raise InputError(f"{name}={value!r} is not known: use {opt.allowed}.")
+            raise InputError(f"{name}={value!r} is out of range: use {opt.allowed}.")
         out[name] = conv
     return out
 
@@ -192,11 +210,11 @@ def validate_rate_range(rate_range_bpm) -> tuple[float, float]:
     except (TypeError, ValueError):
         raise InputError(
             f"rate_range_bpm={rate_range_bpm!r} must be two numbers (low, high) in beats per "
-            "minute, e.g. rate_range_bpm=(30, 180) or --rate-range 30 180."
+            "minute, e.g. rate_range_bpm=(30, 180)."
         ) from None
     if not (_positive(lo) and _positive(hi) and lo < hi):
         raise InputError(
             f"rate_range_bpm={rate_range_bpm!r} must satisfy 0 < low < high (beats per minute), "
-            "e.g. (30, 180)."
+            "e.g. rate_range_bpm=(30, 180)."
         )
     return lo, hi

@@ -14,7 +14,12 @@ from tempofield.errors import InputError
 
 @dataclass(frozen=True)
 class Specimen:
-    """Search band and plausible ranges for one kind of specimen."""
+    """Search band and plausible ranges for one kind of specimen.
+
+    ``source`` and ``conduction_source`` are the citations shown to users in
+    plausibility warnings; how sure each one is stays in the comments above
+    :data:`SPECIMENS`.
+    """
 
     name: str
     description: str
@@ -25,16 +30,22 @@ class Specimen:
     conduction_source: str = ""
 
 
+# Notes on the sources, for the maintainers (``source`` is shown to users in
+# plausibility warnings, so it holds the citation only):
+# - hpsc-cardiomyocytes: the 0.2-3 Hz range is partly recalled from memory,
+#   not re-read in Liu, Laksman & Backx 2016; check it against the paper.
+# - mouse-heart: Tan et al. 2003 was cited from memory (no volume or page);
+#   check the range and complete the reference.
 SPECIMENS: dict[str, Specimen] = {s.name: s for s in (
     Specimen("hpsc-cardiomyocytes", "stem-cell-derived heart-muscle cells beating on their own",
              (10.0, 200.0), (12.0, 180.0),
-             "Liu, Laksman & Backx 2016, Adv Drug Deliv Rev 96:253 (about 0.2-3 Hz; range partly from memory)",
+             "Liu, Laksman & Backx 2016, Adv Drug Deliv Rev 96:253 (about 0.2-3 Hz)",
              (1e4, 3e5), "about 1-30 cm/s: review table in PMC4635107 (Burridge 2011; Thompson 2012); "
                          "Lee et al. 2012, Circ Res 110:1556"),
     Specimen("zebrafish-heart-28c", "zebrafish embryo or larva heart at 28 degrees C",
              (90.0, 260.0), (120.0, 225.0), "Barrionuevo & Burggren 1999, Am J Physiol 276:R505"),
     Specimen("mouse-heart", "mouse heart, anaesthetised to conscious", (200.0, 850.0), (250.0, 750.0),
-             "Tan et al. 2003, J Cardiovasc Pharmacol (from memory)"),
+             "Tan et al. 2003, J Cardiovasc Pharmacol"),
     Specimen("airway-cilia", "human airway cilia (photometric or high-speed video)", (180.0, 1500.0),
              (300.0, 1200.0), "about 5-20 Hz depending on method and temperature: Rutland, Griffin & Cole 1982, "
                               "Am Rev Respir Dis 125:100; Nikolaizik et al. 2020, ERJ Open Res 6:00477-2020"),
@@ -46,7 +57,7 @@ def get_specimen(name: str) -> Specimen:
     try:
         return SPECIMENS[name]
     except KeyError:
-        raise InputError(f"unknown specimen {name!r}; known presets are: {', '.join(SPECIMENS)}.") from None
+        raise InputError(f"unknown specimen={name!r}; the known presets are: {', '.join(SPECIMENS)}.") from None
 
 
 def plausibility_warnings(specimen: Specimen, table, frame_interval_s: float) -> list[str]:

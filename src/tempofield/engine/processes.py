@@ -37,11 +37,12 @@ _POOL = None
 
 
 def process_pool(n_workers: int):
-    """A reusable pool of worker processes for ripser, which holds the GIL (DESIGN.md).
+    """A reusable pool of worker processes for ripser, which holds the GIL.
 
-    Spawned, not forked (the caller may be a Qt application with threads), and
-    created once per process on first use. None where a process may not have
-    children (a daemonic worker), in which case work runs in this thread.
+    See "Worker processes" in DEVELOPERS.md. Spawned, not forked (the caller
+    may be a Qt application with threads), and created once per process on
+    first use. None where a process may not have children (a daemonic worker),
+    in which case work runs in this thread.
     """
     global _POOL
     import multiprocessing

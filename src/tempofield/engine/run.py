@@ -19,6 +19,7 @@ from tempofield.outputs.result import RhythmResult
 #: The stages of an analysis, in order. Each is ``stage(run) -> Iterator[Progress]``.
 STAGES = (
     stages.maps_pass,        # pass 1: spectral maps, Gram bins, kept spectra
+    stages.codec_flicker,    # lossy video: frozen pixels and key-frame rhythms are no rhythm
     stages.segmentation,     # beating regions
     stages.references,       # each region's rhythm reference (persistence, circular coordinates)
     stages.loop_score_map,   # optional: loop score over small tiles

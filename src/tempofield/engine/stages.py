@@ -17,6 +17,7 @@ import os
 import time
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Callable, Iterator
 
 import numpy as np
@@ -60,6 +61,9 @@ from tempofield.outputs.result import RhythmResult
 #: 0.3 % of their norms, and coherence within a few thousandths of the second read).
 NARROW_LEAK = 1e-5
 
+
+#: Specimens whose field gives rates in hertz (cilia beat frequency): their default rate unit.
+HZ_SPECIMENS = frozenset({"airway-cilia"})
 
 #: Pixels at least this coherent with their reference define the earliest phase of a region.
 COHERENT = 0.5
@@ -133,6 +137,9 @@ class Run:
     keep: KeptSpectra | None = None
     phase_source: str = ""
     maps: dict = field(default_factory=dict)
+    # ---- codec_flicker
+    video: dict | None = None
+    frozen: np.ndarray | None = None
     # ---- segmentation
     labels: np.ndarray | None = None
     # ---- references
@@ -245,6 +252,71 @@ def maps_pass(run: Run) -> Iterator[Progress]:
     run.maps, run.tile_results = m, results
 
 
+#: In a lossy inter-frame video, a pixel whose value repeats exactly over more than this share of
+#: frame-to-frame steps is frozen by the codec, not seen by a camera: no rhythm is taken from it.
+FROZEN_LIMIT = 0.85
+
+#: ... and a region whose pixels repeat over more than this share of the steps (its median) is the
+#: codec's flicker as a whole: a camera sees noise on tissue in every frame.
+REGION_FROZEN_LIMIT = 0.7
+
+
+def codec_flicker(run: Run) -> Iterator[Progress]:
+    """Lossy video: what the coding did is not a rhythm.
+
+    For a video whose codec codes frames from one another (H.264 and the
+    like, :func:`tempofield.io.video.probe_video`), two rules, both stated
+    in the warning: (1) pixels that the codec froze (their value repeats
+    exactly over more than :data:`FROZEN_LIMIT` of the frame steps; a camera
+    pixel never does) are not rhythmic; (2) when the key frames recur often
+    enough for their rate to be resolved (at least three frequency bins
+    apart), rhythms within one bin of the key-frame rate or its multiples
+    are not taken either. :func:`segmentation` then drops regions whose
+    median frozen share exceeds :data:`REGION_FROZEN_LIMIT`, and
+    :func:`locked_detection` leaves frozen pixels out.
+
+    Reads: ``stack`` (source, frames), ``maps``. Writes: ``maps`` (rate,
+    period and amplitude NaN and ``detected`` 0 where excluded), ``frozen``,
+    ``warnings``, ``video`` (the coding, recorded in ``run.json``).
+    """
+    stack = run.stack
+    if stack.meta.get("format") != "video" or stack.source == "array":
+        return
+    from tempofield.io.video import probe_video
+
+    run.video = video = probe_video(stack.source)
+    if not video["inter_frame_lossy"]:
+        return
+    yield Progress(0, 1, "codec check")
+    frozen = np.asarray(stack.data.map_blocks(lambda b: preprocess.frozen_fraction(b)[None], dtype=np.float32,
+                                              chunks=(1,) + stack.data.chunks[1:]).compute(scheduler="threads"))[0]
+    run.frozen = frozen
+    m = run.maps
+    detected = m["detected"] > 0
+    excluded = detected & (frozen > FROZEN_LIMIT)
+    comb = ""
+    bin_bpm = 60.0 * run.plan.bin_hz
+    k = video["key_frame_interval"]
+    if k and k > 1:
+        key_bpm = 60.0 / (k * stack.frame_interval_s)
+        if key_bpm >= 3 * bin_bpm:
+            rate = m["rate_bpm"]
+            nearest = np.round(rate / key_bpm) * key_bpm
+            at_keys = detected & (nearest > 0) & (np.abs(rate - nearest) <= bin_bpm)
+            excluded |= at_keys
+            comb = f"; rhythms at the key-frame rate {key_bpm:.1f} bpm or its multiples were not taken"
+    for key in ("rate_bpm", "period_s", "amplitude"):
+        m[key][excluded] = np.nan
+    m["detected"][excluded] = 0
+    key_text = f"a key frame every {k:g} frames" if k else "one key frame"
+    run.warnings.append(
+        f"{Path(stack.source).name} is a {video['codec']} video: a lossy codec that codes frames from one another "
+        f"({key_text}); still parts of the picture flicker with the coding, not with the tissue. "
+        f"{100 * np.mean(frozen > FROZEN_LIMIT):.0f} % of the field was frozen by the codec and is not taken as "
+        f"rhythmic{comb}. For measurements, export the recording without loss (TIFF, or an FFV1 or PNG video).")
+    yield Progress(1, 1, "codec check")
+
+
 def segmentation(run: Run) -> Iterator[Progress]:
     """Beating regions: rate-consistent components of the detected pixels, less the pooling rim.
 
@@ -256,6 +328,14 @@ def segmentation(run: Run) -> Iterator[Progress]:
     if run.halo:
         labels = regions_mod.relabel(regions_mod.trim_pooling_rim(labels, m["amplitude"], run.halo),
                                      opts["min_area_px"])
+    if run.frozen is not None and labels.max() > 0:  # lossy video: regions of codec flicker (codec_flicker)
+        medians = [float(np.median(run.frozen[labels == lab])) for lab in range(1, labels.max() + 1)]
+        flicker = [lab for lab, med in enumerate(medians, start=1) if med > REGION_FROZEN_LIMIT]
+        if flicker:
+            labels = regions_mod.relabel(np.where(np.isin(labels, flicker), 0, labels), 1)
+            run.warnings.append(f"{len(flicker)} region(s) of frozen, codec-coded picture were dropped (their "
+                                f"pixels repeat exactly over more than {100 * REGION_FROZEN_LIMIT:.0f} % of the "
+                                "frames, which a camera's noise never does)")
     run.labels = labels
     return
     yield  # a generator with no ticks
@@ -279,6 +359,7 @@ def references(run: Run) -> Iterator[Progress]:
     traces, bin_region = gather_bins(run.tile_results, labels, run.gram_bin)
     for r in run.tile_results:  # the gathered copy is all that is needed from here on
         r.pop("bin_sums", None)
+    run.warnings += harmonic_warnings(run, traces, bin_region)  # (before the slow trends go)
     traces = preprocess.detrend(traces, run.basis)
     jobs = {}
     for label in region_ids:
@@ -310,6 +391,30 @@ def references(run: Run) -> Iterator[Progress]:
         run.check_cancel()
     run.traces, run.bin_region = traces, bin_region
     run.timings["references_s"] = time.perf_counter() - t_ref
+
+
+def _band_advice(run: Run, true_bpm: float) -> str:
+    lo, hi = run.rate_range_bpm
+    new_lo = max(1.0, float(np.floor(0.8 * true_bpm)))
+    return (f"to include it, widen the band: --rate-range {new_lo:g} {hi:g} on the command line "
+            f"(rate_range_bpm=({new_lo:g}, {hi:g}) in Python)")
+
+
+def harmonic_warnings(run: Run, traces, bin_region) -> list[str]:
+    """Regions whose rate is probably the harmonic of a slower rhythm below the band."""
+    out = []
+    lo, hi = run.rate_range_bpm
+    rate_map, labels = run.maps["rate_bpm"], run.labels
+    for label in range(1, int(labels.max()) + 1):
+        cols = bin_region == label
+        if not cols.any():
+            continue
+        rate = float(np.nanmedian(rate_map[labels == label]))
+        true = spectral.subharmonic_below_band(traces[:, cols], run.stack.frame_interval_s, rate, lo)
+        if true is not None:
+            out.append(f"region {label}: its {rate:.0f} bpm is probably the harmonic of a rhythm at about "
+                       f"{true:.0f} bpm, below the band {lo:g}-{hi:g} bpm; " + _band_advice(run, true))
+    return out
 
 
 def reference_warnings(label: int, ref) -> list[str]:
@@ -444,6 +549,12 @@ def locked_detection(run: Run) -> Iterator[Progress]:
     if not run.references or not run.opts["locked_detection"]:
         return
     score = phase_mod.locked_score(run.lock_amplitude, m["noise_power"], run.stack.n_frames)
+    if run.frozen is not None:
+        # A lossy inter-frame codec spreads a beat into the blocks around it, and its bit budget makes
+        # still picture flicker with the beat: a lock-in would find both. Not used there.
+        run.warnings.append("reference-locked detection was not used: in a lossy video the codec spreads "
+                            "the beat into neighbouring blocks")
+        return
     significant = np.isfinite(score) & (score > -np.log(run.opts["false_alarm"]))
     amplitude = np.where(run.labels > 0, m["amplitude"], run.lock_amplitude)
     grown = regions_mod.join_locked(run.labels, run.candidates, significant, amplitude, run.halo)
@@ -496,17 +607,28 @@ def activation(run: Run) -> Iterator[Progress]:
 def propagation(run: Run) -> Iterator[Progress]:
     """Conduction velocity field and each region's plane-wave or point-source fit, from the delays.
 
-    Reads: ``delay_s``, ``labels``, ``references``. Writes: ``propagation``
-    ({label: fit values}), ``velocity`` ((Y, X, 2) in µm/s, or px/s without a
-    pixel size).
+    Reads: ``delay_s``, ``labels``, ``references``, ``lock_amplitude`` and
+    ``maps["noise_power"]`` (each delay's uncertainty). Writes:
+    ``propagation`` ({label: fit values}), ``velocity`` ((Y, X, 2) in µm/s,
+    or px/s without a pixel size), a warning for each region without
+    measurable propagation.
     """
     if not run.references:
         return
     periods = {label: ref.mean_period_s for label, ref in run.references.items()}
     yield Progress(0, 1, "propagation")
     run.check_cancel()
+    period_map = np.full(run.labels.shape, np.nan)
+    for label, period in periods.items():
+        period_map[run.labels == label] = period
+    score = phase_mod.locked_score(run.lock_amplitude, run.maps["noise_power"], run.stack.n_frames)
+    delay_sd = propagation_mod.delay_uncertainty(score, period_map)
     run.propagation, run.velocity = propagation_mod.region_propagation(
-        run.delay_s, run.labels, periods, run.stack.pixel_size_um, run.stack.frame_interval_s)
+        run.delay_s, run.labels, periods, run.stack.pixel_size_um, run.stack.frame_interval_s,
+        delay_sd_s=delay_sd, pooling_radius=run.halo)
+    for label, fit in sorted(run.propagation.items()):
+        if fit.get("note"):
+            run.warnings.append(f"region {label}: {fit['note']}; no conduction velocity, direction or origin")
     yield Progress(1, 1, "propagation")
 
 
@@ -522,13 +644,27 @@ def assemble(run: Run) -> Iterator[Progress]:
     if run.loop_map is not None:
         extra["loop_score_tiles"] = run.loop_map
     if run.velocity is not None:
-        extra["velocity_y_um_s"] = run.velocity[..., 0].astype(np.float32)
-        extra["velocity_x_um_s"] = run.velocity[..., 1].astype(np.float32)
+        unit = regions_mod.speed_unit(stack.pixel_size_um)
+        extra[f"velocity_y_{unit}"] = run.velocity[..., 0].astype(np.float32)
+        extra[f"velocity_x_{unit}"] = run.velocity[..., 1].astype(np.float32)
+    # coherence says how well a rhythmic pixel follows its region's rhythm: none elsewhere
+    run.coherence[run.labels == 0] = np.nan
     table = regions_mod.region_table(run.labels, {"rate_bpm": m["rate_bpm"], "coherence": run.coherence,
                                                   "amplitude": m["amplitude"]}, run.references,
                                      pixel_size_um=stack.pixel_size_um, propagation=run.propagation)
     if run.specimen is not None:
         run.warnings += presets.plausibility_warnings(run.specimen, table, stack.frame_interval_s)
+    lo, hi = run.rate_range_bpm
+    for label, ref in sorted(run.references.items()):
+        if not lo <= ref.rate_mean_bpm <= hi:
+            ratio = float((ref.check or {}).get("rate_ratio", np.nan))
+            why = ""
+            for q in (2, 3):
+                if abs(ratio * q - 1.0) < 0.1:
+                    why = f" (about 1/{q} of the region's spectral rate: the rate map may show a harmonic)"
+            run.warnings.append(f"region {label}: its rhythm reference beats at {ref.rate_mean_bpm:.1f} bpm, "
+                                f"outside the band {lo:g}-{hi:g} bpm{why}"
+                                + ("; " + _band_advice(run, ref.rate_mean_bpm) if ref.rate_mean_bpm < lo else ""))
     for label, ref in run.references.items():
         if ref.quasi_periodic:
             run.warnings.append(f"region {label}: two strong loops (second-loop ratio {ref.second_loop_ratio:.2f}): "
@@ -538,9 +674,11 @@ def assemble(run: Run) -> Iterator[Progress]:
         periodicity=m["periodicity"], coherence=run.coherence, phase_rad=run.phase_rad,
         delay_s=run.delay_s, regions=run.labels, region_table=table, references=run.references,
         frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
-        parameters={"rate_range_bpm": list(run.rate_range_bpm), **opts, "warnings": run.warnings,
+        parameters={"rate_range_bpm": list(run.rate_range_bpm), **opts,
+                    "rate_unit": opts["rate_unit"] or ("Hz" if opts["specimen"] in HZ_SPECIMENS else "bpm"),
+                    "warnings": run.warnings,
                     "gram_bin_px": run.gram_bin, "tile_shape_px": list(run.tiles.tile_shape),
-                    "phase_source": run.phase_source,
+                    "phase_source": run.phase_source, "video_coding": run.video,
                     "velocity_unit": "um/s" if stack.pixel_size_um else "px/s"},
         input={"identity": stack.identity(), "meta": stack.meta, "shape": list(stack.shape)},
         timings={**run.timings, "total_s": time.perf_counter() - run.t_start},

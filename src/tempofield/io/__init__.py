@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import importlib
 
-__all__ = ["atomic", "omezarr"]
+__all__ = ["atomic", "omezarr", "video"]
 
 
 def __getattr__(name: str):

@@ -173,3 +173,35 @@ def detrend(traces, basis) -> np.ndarray:
     x = as_float(traces)
     q = as_float(basis)
     return x - q @ (q.T @ x)
+
+
+def frozen_fraction(frames) -> np.ndarray:
+    """Share of frame-to-frame steps over which each pixel's value does not change at all.
+
+    A camera pixel changes every frame (its noise alone sees to that); a
+    pixel of a lossy inter-frame video often does not, where the codec
+    repeats a block until its next refresh. The share of exact repeats tells
+    the two apart.
+
+    Parameters
+    ----------
+    frames : (T, Y, X) ndarray, T >= 2
+
+    Returns
+    -------
+    (Y, X) float32 in [0, 1]
+
+    Examples
+    --------
+    >>> f = np.zeros((5, 1, 2)); f[:, 0, 1] = [1, 2, 3, 3, 4]
+    >>> frozen_fraction(f).tolist()
+    [[1.0, 0.25]]
+    """
+    x = np.asarray(frames)
+    if x.ndim != 3 or x.shape[0] < 2:
+        raise InputError(f"frozen_fraction needs (T, Y, X) frames with T >= 2, got shape {x.shape}.")
+    same = np.zeros(x.shape[1:], np.int64)
+    for t in range(1, x.shape[0]):
+        same += x[t] == x[t - 1]
+    return (same / (x.shape[0] - 1)).astype(np.float32)
+

@@ -204,8 +204,18 @@ def velocity_from_phase(phase_rad, mask, omega_rad_s: float, pixel_size_um=None,
 FIT_MAX_POINTS = 5000
 
 
-def fit_region(act_s, mask, pixel_size_um=None) -> dict:
+def fit_region(act_s, mask, pixel_size_um=None, weight=None) -> dict:
     """Fit a plane wave and a point source to a region's activation times; keep the better.
+
+    Parameters
+    ----------
+    act_s : (Y, X) ndarray
+        Unwrapped activation times, seconds.
+    mask : (Y, X) bool ndarray
+    pixel_size_um : float, optional
+    weight : (Y, X) ndarray, optional
+        Weight of each pixel, 1 / variance of its activation time (see
+        :func:`delay_uncertainty`); equal weights by default.
 
     Returns
     -------
@@ -213,23 +223,26 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
         ``model`` ("plane" or "point"), ``speed_um_s`` (pixels/s without a pixel
         size), ``direction_deg`` (plane wave; NaN for a point source),
         ``origin_yx`` (point source centre, or the earliest pixel for a plane
-        wave), ``rms_s`` residual.
+        wave), ``rms_s`` residual (weighted).
     """
     scale = float(pixel_size_um) if pixel_size_um else 1.0
-    ok = np.asarray(mask, bool) & np.isfinite(act_s)
+    wmap = np.ones(np.shape(act_s)) if weight is None else np.asarray(weight, float)
+    ok = np.asarray(mask, bool) & np.isfinite(act_s) & np.isfinite(wmap) & (wmap > 0)
     if ok.sum() < 6:
         return {"model": "none", "speed_um_s": np.nan, "direction_deg": np.nan, "origin_yx": (np.nan, np.nan),
                 "rms_s": np.nan}
     yy, xx = np.nonzero(ok)
     t = np.asarray(act_s, float)[ok]
+    w = wmap[ok] / wmap[ok].mean()
     if t.size > FIT_MAX_POINTS:  # an even subsample is plenty for four parameters
         keep = np.random.default_rng(0).choice(t.size, FIT_MAX_POINTS, replace=False)
-        yy, xx, t = yy[keep], xx[keep], t[keep]
+        yy, xx, t, w = yy[keep], xx[keep], t[keep], w[keep]
+    sw = np.sqrt(w)
     # centred coordinates: a line of pixels (one coordinate constant) must not lend
     # the intercept a gradient along the missing direction
     a = np.column_stack([np.ones_like(t), yy - yy.mean(), xx - xx.mean()])
-    coef, *_ = np.linalg.lstsq(a, t, rcond=None)
-    plane_rms = float(np.sqrt(np.mean((a @ coef - t) ** 2)))
+    coef, *_ = np.linalg.lstsq(a * sw[:, None], t * sw, rcond=None)
+    plane_rms = float(np.sqrt(np.average((a @ coef - t) ** 2, weights=w)))
     gy, gx = coef[1] / scale, coef[2] / scale
     g = np.hypot(gy, gx)
     i0 = int(np.argmin(t))
@@ -239,19 +252,20 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
 
     def resid(p):
         t0, y0, x0, slow = p
-        return t0 + slow * np.hypot(yy - y0, xx - x0) - t
+        return sw * (t0 + slow * np.hypot(yy - y0, xx - x0) - t)
 
     def jac(p):
         _, y0, x0, slow = p
         r = np.hypot(yy - y0, xx - x0)
         safe = np.where(r > 0, r, 1.0)
-        return np.column_stack([np.ones_like(r), -slow * (yy - y0) / safe, -slow * (xx - x0) / safe, r])
+        return sw[:, None] * np.column_stack([np.ones_like(r), -slow * (yy - y0) / safe,
+                                              -slow * (xx - x0) / safe, r])
 
     p0 = [t[i0], yy[i0], xx[i0], max(g * scale, 1e-6)]
     try:
         fit = least_squares(resid, p0, jac=jac, loss="soft_l1", f_scale=max(plane_rms, 1e-6))
         t0, y0, x0, slow = fit.x
-        point_rms = float(np.sqrt(np.mean(resid(fit.x) ** 2)))
+        point_rms = float(np.sqrt(np.mean(resid(fit.x) ** 2) / np.mean(w)))
     except (ValueError, np.linalg.LinAlgError):
         return plane
     plane_exact = plane_rms <= 1e-6 * (float(t.max() - t.min()) + 1e-12)
@@ -261,17 +275,82 @@ def fit_region(act_s, mask, pixel_size_um=None) -> dict:
     return plane
 
 
+#: Propagation is reported only when the delays vary across the region more than their noise
+#: explains: the chance that pure noise passes is at most this (see :func:`propagation_test`).
+PROPAGATION_ALPHA = 1e-3
+
+
+def delay_uncertainty(score, period_s) -> np.ndarray:
+    """Standard deviation of each pixel's activation delay from its lock-in's signal-to-noise ratio.
+
+    With ``score`` = |z|^2 / N (:func:`tempofield.kernels.phase.locked_score`),
+    the lock-in phase of a signal in white noise has a standard deviation of
+    about 1 / sqrt(2 score) radians (small-noise approximation, capped at
+    that of a uniform phase, pi / sqrt(3)), i.e. that share of ``period_s``
+    over 2 pi, in seconds.
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sd_rad = np.minimum(1.0 / np.sqrt(2.0 * np.asarray(score, float)), np.pi / np.sqrt(3.0))
+    return sd_rad / (2 * np.pi) * np.asarray(period_s, float)
+
+
+def propagation_test(act_s, mask, sd_s, pooling_radius: int = 0) -> dict:
+    """Do the activation times vary across the region more than their own noise explains?
+
+    The weighted scatter of the delays about their weighted mean,
+    chi2 = sum w (d - mean)^2 with w = 1 / sd^2, is compared with its
+    distribution for a region that beats all at once: chi-square with
+    n_eff - 1 degrees of freedom, where neighbouring pooled pixels share
+    noise, so ``(2 r + 1)^2`` pixels count as one (n_eff = n / (2r+1)^2, and
+    chi2 is divided by the same factor). Propagation is measurable when the
+    chance of so large a scatter from noise alone is below
+    :data:`PROPAGATION_ALPHA`.
+
+    Returns
+    -------
+    dict
+        ``measurable`` (bool), ``p_value``, ``spread_s`` (the weighted
+        standard deviation of the delays), ``noise_s`` (the typical delay
+        uncertainty: the root of the weighted mean variance).
+    """
+    from scipy.stats import chi2 as chi2_dist
+
+    d = np.asarray(act_s, float)
+    sd = np.asarray(sd_s, float)
+    ok = np.asarray(mask, bool) & np.isfinite(d) & np.isfinite(sd) & (sd > 0)
+    n = int(ok.sum())
+    block = (2 * int(pooling_radius) + 1) ** 2
+    n_eff = n / block
+    if n_eff < 3:
+        return {"measurable": False, "p_value": 1.0, "spread_s": np.nan, "noise_s": np.nan}
+    w = 1.0 / sd[ok] ** 2
+    mean = np.sum(w * d[ok]) / w.sum()
+    chi2 = float(np.sum(w * (d[ok] - mean) ** 2)) / block
+    p_value = float(chi2_dist.sf(chi2, n_eff - 1))
+    return {"measurable": p_value < PROPAGATION_ALPHA, "p_value": p_value,
+            "spread_s": float(np.sqrt(np.sum(w * (d[ok] - mean) ** 2) / w.sum())),
+            "noise_s": float(np.sqrt(n / w.sum()))}
+
+
 def region_propagation(delay_s, regions, periods: dict, pixel_size_um=None, frame_interval_s=None,
-                       radius: int = 3) -> tuple[dict, np.ndarray]:
+                       radius: int = 3, *, delay_sd_s=None, pooling_radius: int = 0) -> tuple[dict, np.ndarray]:
     """Per-region propagation summary and the (Y, X, 2) velocity field.
 
-    A region whose delays span less than one frame interval beats in
-    synchrony: no speed or direction is reported for it (NaN).
+    With ``delay_sd_s`` (each pixel's delay uncertainty, :func:`delay_uncertainty`)
+    the fits are weighted by 1 / sd^2 and a region gets a speed, direction and
+    origin only when :func:`propagation_test` finds its delays vary more than
+    their noise explains; a pixel of the velocity field only where its local
+    gradient is significant too (|grad T| over its standard error above the
+    same test's threshold for two degrees of freedom). Otherwise the region
+    is "synchronous": NaN speed, direction and origin, and ``note`` says
+    within how much it beats. Without uncertainties, delays that span less
+    than one frame interval count as synchrony.
     """
     h, w = regions.shape
     field = np.full((h, w, 2), np.nan)
     out = {}
     boxes = ndi.find_objects(np.asarray(regions))
+    sd_map = None if delay_sd_s is None else np.asarray(delay_sd_s, float)
     for label, period in periods.items():
         if not 0 < label <= len(boxes) or boxes[label - 1] is None:  # no pixels: nothing to fit
             out[label] = {"model": "none", "speed_um_s": np.nan, "direction_deg": np.nan,
@@ -284,13 +363,50 @@ def region_propagation(delay_s, regions, periods: dict, pixel_size_um=None, fram
         mask = regions[box] == label
         act = unwrap_delay(delay_s[box], mask, period)
         span = np.nanmax(act) - np.nanmin(act) if np.isfinite(act).any() else 0.0
-        if frame_interval_s is not None and span < frame_interval_s:
+        sd = None if sd_map is None else sd_map[box]
+        test = None if sd is None else propagation_test(act, mask, sd, pooling_radius)
+        if test is not None:  # the delays' own noise decides (a lock-in resolves lags far below a frame)
+            synchronous = not test["measurable"]
+        else:  # without uncertainties: less than one frame interval is taken as synchrony
+            synchronous = frame_interval_s is not None and span < frame_interval_s
+        if synchronous:
+            within = test["spread_s"] if test else span / 2
             out[label] = {"model": "synchronous", "speed_um_s": np.nan, "direction_deg": np.nan,
-                          "origin_yx": (np.nan, np.nan), "rms_s": np.nan}
+                          "origin_yx": (np.nan, np.nan), "rms_s": np.nan,
+                          "note": f"no measurable propagation: the region beats within +-{1000 * within:.0f} ms"
+                                  + (f" (delay noise {1000 * test['noise_s']:.0f} ms, p = {test['p_value']:.2g})"
+                                     if test else "")}
             continue
+        weight = None if sd is None else 1.0 / np.maximum(sd, 1e-12) ** 2
         _, _, vel = velocity_from_activation(act, mask, pixel_size_um, radius)
+        if sd is not None:
+            vel[~_significant_gradient(act, mask, sd, radius, pooling_radius)] = np.nan
         field[box][mask] = vel[mask]
-        fit = fit_region(act, mask, pixel_size_um)
+        fit = fit_region(act, mask, pixel_size_um, weight)
         oy, ox = fit["origin_yx"]
         out[label] = {**fit, "origin_yx": (oy + ys.start, ox + xs.start)}
+        if test:
+            out[label]["p_value"] = test["p_value"]
     return out, field
+
+
+def _significant_gradient(act_s, mask, sd_s, radius: int, pooling_radius: int) -> np.ndarray:
+    """Pixels whose local plane fit's gradient stands out of its noise (two degrees of freedom).
+
+    The gradient of a least-squares plane over the (2R+1)^2 window has a
+    standard error of sd / sqrt(sum of squared offsets) per axis, inflated
+    by (2r+1) for the noise neighbouring pooled pixels share.
+    """
+    from scipy.stats import chi2 as chi2_dist
+
+    gy, gx = local_gradient(act_s, mask, radius)
+    var = np.where(np.asarray(mask, bool), np.asarray(sd_s, float) ** 2, np.nan)
+    valid = np.isfinite(var)
+    size = 2 * radius + 1
+    local_var = ndi.uniform_filter(np.where(valid, var, 0.0), size) / np.maximum(
+        ndi.uniform_filter(valid.astype(float), size), 1e-12)
+    offsets = size * 2 * sum(k * k for k in range(1, radius + 1))
+    se = np.sqrt(np.maximum(local_var, 0.0) / offsets) * (2 * pooling_radius + 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z2 = (gy ** 2 + gx ** 2) / se ** 2
+    return np.isfinite(z2) & (z2 > chi2_dist.isf(PROPAGATION_ALPHA, 2))

@@ -213,8 +213,20 @@ def bin_labels(regions, bin_ids, gram_bin: int) -> np.ndarray:
 TABLE_COLUMNS = (
     "region", "area_px", "area_um2", "rate_median_bpm", "rate_iqr_bpm", "beats", "beat_interval_mean_s",
     "beat_interval_cv", "loop_score", "second_loop_ratio", "quasi_periodic", "coherence_mean", "amplitude_median",
-    "conduction_velocity_um_s", "wave_direction_deg", "origin_y_px", "origin_x_px",
+    "conduction_velocity_um_s", "wave_direction_deg", "origin_y_px", "origin_x_px", "origin_y_um", "origin_x_um",
 )
+
+
+def speed_unit(pixel_size_um) -> str:
+    """The unit suffix of speeds: ``um_s`` with a pixel size, ``px_s`` (pixels per second) without."""
+    return "um_s" if pixel_size_um else "px_s"
+
+
+def table_columns(pixel_size_um=None) -> list[str]:
+    """:data:`TABLE_COLUMNS` with the speed in the unit it is in (``conduction_velocity_px_s`` without a
+    pixel size, and no micrometre origin then)."""
+    cols = [c.replace("_um_s", "_" + speed_unit(pixel_size_um)) for c in TABLE_COLUMNS]
+    return cols if pixel_size_um else [c for c in cols if c not in ("origin_y_um", "origin_x_um")]
 
 
 def region_table(regions, maps: dict, references: dict, *, pixel_size_um=None, propagation=None) -> pd.DataFrame:
@@ -223,8 +235,15 @@ def region_table(regions, maps: dict, references: dict, *, pixel_size_um=None, p
     ``maps`` holds (Y, X) arrays ``rate_bpm``, ``coherence``, ``amplitude``;
     ``references`` maps label -> RhythmReference; ``propagation`` maps label
     -> dict with ``speed_um_s``, ``direction_deg``, ``origin_yx`` (optional).
+    A region without a reference (a maps-only run) has its rhythm's columns
+    empty (``beats``, intervals, loop scores, ``quasi_periodic``), not zero or
+    false. Speeds are in micrometres per second, or pixels per second
+    (``conduction_velocity_px_s``) without a pixel size. Wave direction:
+    degrees counter-clockwise from the +x axis (along the image columns) with
+    y pointing down the rows, so a wave travelling down the rows is +90.
     """
     rows = []
+    speed_col = "conduction_velocity_" + speed_unit(pixel_size_um)
     for label in sorted(int(v) for v in np.unique(regions) if v > 0):
         inside = regions == label
         rate = maps["rate_bpm"][inside]
@@ -233,28 +252,33 @@ def region_table(regions, maps: dict, references: dict, *, pixel_size_um=None, p
         prop = (propagation or {}).get(label, {})
         iv = ref.beat_intervals_s if ref is not None else np.zeros(0)
         origin = prop.get("origin_yx", (np.nan, np.nan))
-        rows.append({
+        row = {
             "region": label,
             "area_px": int(inside.sum()),
             "area_um2": float(inside.sum() * pixel_size_um ** 2) if pixel_size_um else np.nan,
             "rate_median_bpm": float(np.median(rate)) if rate.size else np.nan,
             "rate_iqr_bpm": float(np.subtract(*np.percentile(rate, [75, 25]))) if rate.size else np.nan,
-            "beats": int(len(ref.beat_times_s)) if ref is not None else 0,
+            "beats": int(len(ref.beat_times_s)) if ref is not None else pd.NA,
             "beat_interval_mean_s": float(iv.mean()) if iv.size else np.nan,
             "beat_interval_cv": float(ref.interval_cv) if ref is not None else np.nan,
             "loop_score": float(ref.score) if ref is not None else np.nan,
             "second_loop_ratio": float(ref.second_loop_ratio) if ref is not None else np.nan,
-            "quasi_periodic": bool(ref.quasi_periodic) if ref is not None else False,
+            "quasi_periodic": bool(ref.quasi_periodic) if ref is not None else pd.NA,
             "coherence_mean": float(np.nanmean(maps["coherence"][inside])) if np.isfinite(
                 maps["coherence"][inside]).any() else np.nan,
             "amplitude_median": float(np.nanmedian(maps["amplitude"][inside])) if np.isfinite(
                 maps["amplitude"][inside]).any() else np.nan,
-            "conduction_velocity_um_s": float(prop.get("speed_um_s", np.nan)),
+            speed_col: float(prop.get("speed_um_s", np.nan)),
             "wave_direction_deg": float(prop.get("direction_deg", np.nan)),
             "origin_y_px": float(origin[0]),
             "origin_x_px": float(origin[1]),
-        })
-    return pd.DataFrame(rows, columns=list(TABLE_COLUMNS))
+        }
+        if pixel_size_um:
+            row["origin_y_um"] = float(origin[0]) * pixel_size_um
+            row["origin_x_um"] = float(origin[1]) * pixel_size_um
+        rows.append(row)
+    table = pd.DataFrame(rows, columns=table_columns(pixel_size_um))
+    return table.astype({"beats": "Int64", "quasi_periodic": "boolean"})
 
 
 def region_mean_trace(frames, regions, label: int) -> np.ndarray:

@@ -26,7 +26,9 @@ from tempofield.kernels import _preprocess_loops, _spectral_loops
 from tempofield.kernels._spectral_loops import pack_fixed, unpack_fixed  # noqa: E402,F401
 
 #: Columns of a tile handed to one FFT call: about a thousand traces keep the
-#: working set in cache; power-of-two widths were measured slower (DESIGN.md).
+#: working set in cache. Power-of-two widths (1024, 4096) were measured about
+#: 1.6x slower (cache aliasing, 2-core machines, 600-frame stack); narrower
+#: bands of 260-640 traces 1-13 % slower (DEVELOPERS.md, "Benchmarks").
 FFT_BLOCK_COLUMNS = 1000
 
 #: Effective number of independent noise ordinates = (ordinates used for the
@@ -425,3 +427,62 @@ def periodogram(traces, plan: SpectralPlan, trend_basis=None) -> tuple[np.ndarra
     kernel = SpectralKernel(plan, trend_basis, n_bins_trend=plan.n_bins if trend_basis is not None else None)
     power, _ = kernel.power(x)
     return np.arange(power.shape[0]) * plan.bin_hz, power
+
+
+def subharmonic_below_band(traces, frame_interval_s: float, rate_bpm: float, band_low_bpm: float, *,
+                           min_ratio: float = 0.2, min_snr: float = 10.0):
+    """Is a rate reported in the band the harmonic of a slower rhythm below the band?
+
+    A pulse train at rate f has harmonics at 2f, 3f, ...; when the band
+    starts above f, the search finds 2f (or 3f) and nothing in the band can
+    tell. Here the spectrum of a region's traces (each trace's Hann-windowed
+    periodogram after removing its mean and linear trend, summed over the
+    traces so that a travelling wave does not cancel) is searched near
+    rate / 2 and rate / 3 (within 6 % of them, the spread of a varying rate);
+    a subharmonic below ``band_low_bpm`` counts when its peak is at least
+    ``min_ratio`` of the peak at the rate and ``min_snr`` times the median
+    power of the spectrum.
+
+    Parameters
+    ----------
+    traces : (T, P) ndarray
+        A region's traces (raw: not detrended below the band).
+    frame_interval_s, rate_bpm, band_low_bpm : float
+
+    Returns
+    -------
+    float or None
+        The likely true rate in bpm (the slowest subharmonic that counts), or None.
+
+    Examples
+    --------
+    >>> t = np.arange(600) * 0.05
+    >>> pulses = (np.mod(t, 1.0) < 0.15).astype(float)[:, None]       # 60 bpm, strong harmonics
+    >>> round(subharmonic_below_band(pulses, 0.05, 120.0, 90.0))
+    60
+    >>> subharmonic_below_band(np.cos(2 * np.pi * 2.0 * t)[:, None], 0.05, 120.0, 90.0) is None
+    True
+    """
+    x = np.asarray(traces, np.float64)
+    t = x.shape[0]
+    ramp = np.column_stack([np.ones(t), np.linspace(-1.0, 1.0, t)])
+    x = x - ramp @ np.linalg.lstsq(ramp, x, rcond=None)[0]
+    power = (np.abs(scipy.fft.rfft(x * hann_window(t)[:, None].astype(np.float64), axis=0)) ** 2).sum(axis=1)
+    freqs_bpm = np.fft.rfftfreq(t, frame_interval_s) * 60.0
+
+    def peak_near(rate):
+        near = np.abs(freqs_bpm - rate) <= max(0.06 * rate, 1.5 * freqs_bpm[1])
+        return float(power[near].max()) if near.any() else 0.0
+
+    at_rate = peak_near(rate_bpm)
+    floor = float(np.median(power[freqs_bpm >= 0.2 * rate_bpm])) if t > 8 else 0.0
+    found = None
+    for q in (2, 3):
+        sub = rate_bpm / q
+        if sub >= band_low_bpm or sub < 2 * freqs_bpm[1]:
+            continue
+        p = peak_near(sub)
+        if p >= min_ratio * at_rate and p >= min_snr * floor:
+            found = sub
+    return found
+

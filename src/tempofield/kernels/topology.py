@@ -44,12 +44,13 @@ __all__ = [
 MAX_LOOP_PERSISTENCE = float(np.sqrt(3.0))
 
 #: :func:`is_quasiperiodic` default: the second loop must hold at least this
-#: fraction of the first loop's persistence (CHECKS #4 has about 0.77; a pure
+#: fraction of the first loop's persistence (two incommensurate frequencies, Gakhar & Perea,
+#: arXiv:2103.04540, numbers computed: about 0.77; a pure
 #: rhythm has nearly 0).
 QUASIPERIODIC_RATIO = 0.5
 
 #: :func:`is_quasiperiodic` default: the second loop must be at least this many
-#: times more persistent than the third (CHECKS #4: about 1.81 / 0.5 = 3.6),
+#: times more persistent than the third (the same example: about 1.81 / 0.5 = 3.6),
 #: so that a cloud of many similar noise loops is not called quasi-periodic.
 QUASIPERIODIC_GAP = 2.0
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import scipy.ndimage as ndi
 
 from tempofield.outputs.result import REPORT_FILE
@@ -22,11 +23,16 @@ PREVIEW_MAX_FRAMES = 300
 
 #: Columns of the region table shown in the report (all are in regions.csv).
 REPORT_COLUMNS = [("region", "region", "{:d}"), ("area_px", "area px", "{:d}"),
-                  ("rate_median_bpm", "rate bpm", "{:.1f}"), ("beats", "beats", "{:d}"),
-                  ("beat_interval_cv", "interval CV", "{:.3f}"), ("loop_score", "loop", "{:.2f}"),
-                  ("coherence_mean", "coherence", "{:.2f}"), ("conduction_velocity_um_s", "CV {unit}", "{:.3g}"),
-                  ("wave_direction_deg", "dir °", "{:.0f}"), ("origin_y_px", "origin y", "{:.1f}"),
-                  ("origin_x_px", "origin x", "{:.1f}")]
+                  ("rate_median_{rate}", "rate {rate}", "{:.3g}"), ("beats", "beats", "{:d}"),
+                  ("beat_interval_cv", "beat-interval\nvariation (CV)", "{:.3f}"), ("loop_score", "loop score", "{:.2f}"),
+                  ("coherence_mean", "coherence", "{:.2f}"),
+                  ("conduction_velocity_{speed}", "conduction\nvelocity {unit}/s", "{:.3g}"),
+                  ("wave_direction_deg", "wave\ndirection °", "{:.0f}"), ("origin_y_{length}", "origin y {unit}", "{:.1f}"),
+                  ("origin_x_{length}", "origin x {unit}", "{:.1f}")]
+
+#: How the report states the direction of travel.
+DIRECTION_NOTE = ("wave direction: degrees counter-clockwise from +x (along the columns), y pointing down the "
+                  "rows, so a wave travelling down the image is +90°")
 
 
 def mean_image(stack, max_frames=64):
@@ -40,7 +46,7 @@ def mean_image(stack, max_frames=64):
 
 def _fmt(fmt, v):
     try:
-        if v != v:
+        if v is None or v is pd.NA or v != v:
             return "–"
         return fmt.format(int(v) if fmt == "{:d}" else v)
     except (TypeError, ValueError):
@@ -73,10 +79,12 @@ def render_report(result, path, stack=None) -> Path:
     _outline(ax_mean, labels, ps)
     ax_mean.set_title("mean image, regions outlined")
 
-    finite_rate = result.rate_bpm[np.isfinite(result.rate_bpm)]
+    per = 60.0 if result.rate_unit == "Hz" else 1.0
+    rate_map = result.rate_bpm / per
+    finite_rate = rate_map[np.isfinite(rate_map)]
     lo, hi = (np.percentile(finite_rate, [1, 99]) if finite_rate.size else (0, 1))
-    im = ax_rate.imshow(result.rate_bpm, cmap="viridis", vmin=lo, vmax=max(hi, lo + 1e-3), extent=extent)
-    fig.colorbar(im, ax=ax_rate, shrink=0.8, label="rate (bpm)")
+    im = ax_rate.imshow(rate_map, cmap="viridis", vmin=lo, vmax=max(hi, lo + 1e-3 / per), extent=extent)
+    fig.colorbar(im, ax=ax_rate, shrink=0.8, label=f"rate ({result.rate_unit})")
     ax_rate.set_title("rate" + ("" if finite_rate.size else " (no rhythm found)"))
 
     # Each region's delay as a fraction of its own period, so the cyclic colours wrap where the delay does.
@@ -88,8 +96,9 @@ def render_report(result, path, stack=None) -> Path:
         periods.append(f"{label}: {period:.3g} s")
         cycle[inside] = result.delay_s[inside] / period
     im = ax_delay.imshow(cycle, cmap="twilight", vmin=0, vmax=1, extent=extent)
-    fig.colorbar(im, ax=ax_delay, shrink=0.8, label="activation delay (fraction of the region's period)")
-    vy, vx = result.extra_maps.get("velocity_y_um_s"), result.extra_maps.get("velocity_x_um_s")
+    cb_delay = fig.colorbar(im, ax=ax_delay, shrink=0.8, label="activation delay (fraction of the region's period)")
+    speed = "um_s" if ps else "px_s"
+    vy, vx = result.extra_maps.get(f"velocity_y_{speed}"), result.extra_maps.get(f"velocity_x_{speed}")
     if vy is not None and np.isfinite(vy).any():
         step = max(1, min(h, w) // 16)
         yy, xx = np.mgrid[step // 2:h:step, step // 2:w:step]
@@ -102,7 +111,7 @@ def render_report(result, path, stack=None) -> Path:
                        fontsize=10)
 
     im = ax_coh.imshow(result.coherence, cmap="cividis", vmin=0, vmax=1, extent=extent)
-    fig.colorbar(im, ax=ax_coh, shrink=0.8, label="coherence (0-1)")
+    cb_coh = fig.colorbar(im, ax=ax_coh, shrink=0.8, label="coherence (0-1)")
     ax_coh.set_title("coherence with the region's rhythm")
     for ax in (ax_mean, ax_rate, ax_delay, ax_coh):
         ax.set_xlabel(f"x ({unit})")
@@ -135,10 +144,10 @@ def render_report(result, path, stack=None) -> Path:
         for bt in ref.beat_times_s:
             ax_theta.axvline(bt, color="tab:red", lw=0.6, alpha=0.6)
         ax2 = ax_theta.twinx()
-        ax2.plot(ref.time_s, ref.inst_rate_bpm, color="tab:blue", lw=1.5)
-        ax2.set_ylabel("instantaneous rate (bpm)", color="tab:blue")
+        ax2.plot(ref.time_s, ref.inst_rate_bpm / per, color="tab:blue", lw=1.5)
+        ax2.set_ylabel(f"instantaneous rate ({result.rate_unit})", color="tab:blue")
         ax_theta.set_title(f"region {label}: {len(ref.beat_times_s)} beats (red), "
-                           f"mean {ref.rate_mean_bpm:.1f} bpm; phase from the {ref.method}")
+                           f"mean {ref.rate_mean_bpm / per:.3g} {result.rate_unit}; phase from the {ref.method}")
     else:
         ax_theta.text(0.5, 0.5, "no rhythm reference", ha="center", transform=ax_theta.transAxes)
         ax_theta.set_title("phase and rate over time")
@@ -147,19 +156,32 @@ def render_report(result, path, stack=None) -> Path:
     table = result.region_table
     warnings = list(result.parameters.get("warnings", []))
     if table is not None and len(table):
-        cols = [c for c in REPORT_COLUMNS if c[0] in table.columns]
+        from tempofield.outputs.result import in_rate_unit
+
+        table = in_rate_unit(table, result.rate_unit)
+        names = {"speed": speed, "length": "um" if ps else "px", "rate": "hz" if result.rate_unit == "Hz" else "bpm"}
+        cols = [(c.format(**names), name, fmt) for c, name, fmt in REPORT_COLUMNS
+                if c.format(**names) in table.columns]
         cells = [[_fmt(fmt, row[c]) for c, _, fmt in cols] for _, row in table.head(12).iterrows()]
-        vunit = "µm/s" if result.pixel_size_um else "px/s"
-        tab = ax_table.table(cellText=cells, colLabels=[name.format(unit=vunit) for _, name, _ in cols],
+        heads = [name.format(unit=unit, rate=result.rate_unit) for _, name, _ in cols]
+        tab = ax_table.table(cellText=cells, colLabels=heads,
                              loc="upper center")
         tab.auto_set_font_size(False)
         tab.set_fontsize(9)
-        tab.scale(1, 1.3)
+        tab.scale(1, 1.9)
+        ax_table.text(0.0, 0.26, DIRECTION_NOTE, fontsize=8, color="0.3", transform=ax_table.transAxes)
     else:
         ax_table.text(0.5, 0.8, "no beating region found", ha="center", fontsize=12)
     if warnings:
         ax_table.text(0.0, 0.02, "\n".join("warning: " + x for x in warnings[:4]), fontsize=8, color="tab:red",
                       va="bottom", transform=ax_table.transAxes, wrap=True)
+    if not result.references:  # nothing to fill the rhythm's panels with: leave them out, and say why
+        for ax in (ax_delay, ax_coh, ax_dgm, ax_theta, cb_delay.ax, cb_coh.ax):
+            ax.set_visible(False)
+        why = ("maps only: no rhythm references were computed" if result.parameters.get("maps_only")
+               else "no region with a rhythm reference")
+        fig.text(0.5, 0.45, why + ", so there are no activation delay, coherence, persistence or phase panels",
+                 ha="center", fontsize=11, color="0.3")
     source = Path(str(result.input.get("identity", {}).get("source", ""))).name
     fig.suptitle(f"tempofield {result.version} — {source} — frame interval {result.frame_interval_s:g} s"
                  + (f", pixel {ps:g} µm" if ps else ""))

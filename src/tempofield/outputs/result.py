@@ -73,6 +73,11 @@ class RhythmResult:
     def shape(self) -> tuple[int, int]:
         return tuple(self.rate_bpm.shape)
 
+    @property
+    def rate_unit(self) -> str:
+        """``"bpm"`` or ``"Hz"``: the unit of rates in the tables and figures of this result (the maps are in bpm)."""
+        return "Hz" if self.parameters.get("rate_unit") == "Hz" else "bpm"
+
     def summary(self) -> dict[str, Any]:
         """A few headline numbers: rhythmic area, median rate and its spread."""
         rate = self.rate_bpm[np.isfinite(self.rate_bpm)]
@@ -136,11 +141,29 @@ class RhythmResult:
         omezarr.write_maps(folder / MAPS_FILE, channels, pixel_size_um=self.pixel_size_um,
                            labels={"regions": self.regions}, units=MAP_UNITS)
         table = self.region_table if self.region_table is not None else pd.DataFrame()
-        table.to_csv(folder / REGIONS_FILE, index=False)
+        in_rate_unit(table, self.rate_unit).to_csv(folder / REGIONS_FILE, index=False)
         beats = beats_table(self.references)
         beats.to_csv(folder / BEATS_FILE, index=False)
         _write_json(folder / REFERENCES_FILE,
                     {str(k): (ref.to_dict() if hasattr(ref, "to_dict") else ref) for k, ref in self.references.items()})
+
+
+def in_rate_unit(table: pd.DataFrame, unit: str) -> pd.DataFrame:
+    """A region table with its rate columns in ``unit``: ``rate_*_bpm`` become ``rate_*_hz`` (divided by 60)
+    for Hz; unchanged for bpm.
+
+    Examples
+    --------
+    >>> in_rate_unit(pd.DataFrame({"region": [1], "rate_median_bpm": [90.0]}), "Hz").to_dict("list")
+    {'region': [1], 'rate_median_hz': [1.5]}
+    """
+    if unit != "Hz":
+        return table
+    rates = [c for c in table.columns if c.startswith("rate_") and c.endswith("_bpm")]
+    out = table.copy()
+    for c in rates:
+        out[c] = out[c] / 60.0
+    return out.rename(columns={c: c[:-len("_bpm")] + "_hz" for c in rates})
 
 
 def beats_table(references: dict) -> pd.DataFrame:

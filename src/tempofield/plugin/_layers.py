@@ -23,7 +23,16 @@ META_KEY = "tempofield"
 #: Metadata key holding the whole RhythmResult object (tables, references, other maps).
 RESULT_KEY = "tempofield_result"
 
-VELOCITY_KEYS = ("velocity_y_um_s", "velocity_x_um_s")
+VELOCITY_KEYS = ("velocity_y_um_s", "velocity_x_um_s")  # px_s in place of um_s without a pixel size
+
+
+def _velocity_keys(extra) -> tuple[tuple[str, str], str] | None:
+    """The velocity maps' names in ``extra`` and their unit (micrometre/second or pixel/second), or None."""
+    for suffix, unit in (("um_s", "micrometer/second"), ("px_s", "pixel/second")):
+        keys = (f"velocity_y_{suffix}", f"velocity_x_{suffix}")
+        if all(k in extra for k in keys):
+            return keys, unit
+    return None
 
 #: Percentiles of the finite values that bound a map's colour range.
 ROBUST_PERCENTILES = (1.0, 99.0)
@@ -126,10 +135,12 @@ def result_layer_data(result: RhythmResult, source: str, *, scale=None, translat
     vectors = velocity_vectors(result)
     if vectors is not None:
         data, speed = vectors
+        _, unit = _velocity_keys(result.extra_maps)
+        feature = "speed_um_s" if unit.startswith("micro") else "speed_px_s"
         out.append((data, {
-            "name": layer_name(source, VELOCITY_TITLE), "features": {"speed_um_s": speed},
-            "edge_color": "speed_um_s", "edge_colormap": "magma", "edge_width": 1.0, "vector_style": "arrow",
-            "metadata": provenance(result, source, "velocity", run_id, unit="micrometer/second", **extra_meta),
+            "name": layer_name(source, VELOCITY_TITLE), "features": {feature: speed},
+            "edge_color": feature, "edge_colormap": "magma", "edge_width": 1.0, "vector_style": "arrow",
+            "metadata": provenance(result, source, "velocity", run_id, unit=unit, **extra_meta),
             **spatial}, "vectors"))
     return out
 
@@ -139,12 +150,14 @@ def velocity_vectors(result: RhythmResult, max_arrows_per_side: int = 24):
 
     Returns ``(data, speed)``: data (N, 2, 2) of [start (y, x) in pixels,
     direction (dy, dx) scaled so an arrow at the 90th percentile of speed spans
-    one grid step, faster ones no longer] and speed (N,) in micrometres per second.
+    one grid step, faster ones no longer] and speed (N,) in micrometres per second (pixels per
+    second without a pixel size).
     """
     extra = result.extra_maps or {}
-    if not all(k in extra for k in VELOCITY_KEYS):
+    found = _velocity_keys(extra)
+    if found is None:
         return None
-    vy, vx = (np.asarray(extra[k], np.float32) for k in VELOCITY_KEYS)
+    vy, vx = (np.asarray(extra[k], np.float32) for k in found[0])
     step = max(1, int(np.ceil(max(vy.shape) / max_arrows_per_side)))
     yy, xx = np.mgrid[step // 2:vy.shape[0]:step, step // 2:vy.shape[1]:step]
     sy, sx = vy[yy, xx], vx[yy, xx]
