@@ -74,6 +74,8 @@ def step(name: str, store: str) -> dict:
         import skimage.restoration  # noqa: F401 - unwrapping in the propagation step
 
         import tempofield
+        import tempofield.engine.run  # the package loads lazily: import the engine before the clock starts
+        import tempofield.engine.stack
         import tempofield.kernels.rhythm
         from tempofield import kernels
 
