@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import os
 import re
+import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -88,7 +91,7 @@ def test_an_option_on_by_default_has_a_flag_to_turn_it_off(tmp_path, sample_tif)
 @pytest.mark.parametrize("args, match", [
     (["analyze", "/no/such.tif", "-o", "OUT"], "no such stack"),
     (["analyze", "{sample}", "-o", "OUT", "--rate-range", "20", "900"], "Nyquist"),
-    (["analyze", "{sample}", "-o", "OUT", "--pooling-radius-px", "abc"], "pooling_radius_px"),
+    (["analyze", "{sample}", "-o", "OUT", "--pooling-radius-px", "abc"], "--pooling-radius-px abc is not an integer"),
     (["analyze", "{nometa}", "-o", "OUT"], "--frame-interval"),
     (["analyze", "{sample}", "-o", "{existing}"], "already exists"),
     (["analyze", "{sample}", "-o", "{existing}", "--overwrite"], "not a tempofield result folder"),
@@ -182,3 +185,69 @@ def test_convert_then_analyze_gives_the_same_maps(tmp_path, sample_tif):
     assert sorted(ra.references) == sorted(rb.references)
     for label in rb.references:
         np.testing.assert_array_equal(ra.references[label].beat_times_s, rb.references[label].beat_times_s)
+
+
+# ------------------------------------------------------------------------------------------ ending on a signal
+def _command():
+    """The installed console script (what users run), or the module if there is none."""
+    script = Path(sys.executable).parent / "tempofield"
+    return [str(script)] if script.exists() else [sys.executable, "-m", "tempofield.cli"]
+
+
+@pytest.fixture(scope="module")
+def long_stack(tmp_path_factory):
+    """600 x 256 x 256 float32 (157 MB): several seconds of analysis on two cores."""
+    path = tmp_path_factory.mktemp("long") / "long.tif"
+    t = np.arange(600)[:, None, None] * 0.02
+    data = (100 + 10 * np.sin(2 * np.pi * 1.5 * t)
+            + np.random.default_rng(0).normal(0, 1, (600, 256, 256))).astype(np.float32)
+    tifffile.imwrite(path, data, imagej=True, metadata={"axes": "TYX", "finterval": 0.02})
+    return path
+
+
+def _start(long_stack, tmp_path):
+    tmp = tmp_path / "tmpdir"
+    tmp.mkdir()
+    env = dict(os.environ, TMPDIR=str(tmp))
+    proc = subprocess.Popen([*_command(), "analyze", str(long_stack), "-o", str(tmp_path / "out"), "--quiet"],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    return proc, tmp
+
+
+def _ended_cleanly(proc, tmp, tmp_path, code):
+    _, err = proc.communicate(timeout=120)  # a hang fails here
+    assert proc.returncode == code, err
+    assert "Traceback" not in err
+    assert len(err.strip().splitlines()) == 1, err  # one line says what happened
+    assert [p.name for p in tmp_path.iterdir() if p.name != "tmpdir"] == []  # no result, no partial folder
+    assert [p.name for p in tmp.rglob("*") if "tempofield" in p.name] == []  # the kept spectra are gone
+    return err
+
+
+@pytest.mark.parametrize("sig, code, says", [(signal.SIGTERM, 143, "SIGTERM"), (signal.SIGHUP, 129, "SIGHUP"),
+                                             (signal.SIGINT, 130, "interrupted")])
+def test_a_signal_during_the_analysis_ends_it_cleanly(long_stack, tmp_path, sig, code, says):
+    """SIGTERM (kill, a job scheduler), SIGHUP (a closed terminal) and Ctrl-C while the maps pass writes
+    its temporary spectra: the run ends with 128 + the signal's number and leaves nothing behind."""
+    proc, tmp = _start(long_stack, tmp_path)
+    deadline = time.monotonic() + 60
+    while not any(p.name.startswith("tempofield-spectra-") for p in tmp.iterdir()):
+        assert proc.poll() is None, proc.communicate()
+        assert time.monotonic() < deadline, "the temporary spectra folder never appeared"
+        time.sleep(0.02)
+    proc.send_signal(sig)
+    assert says in _ended_cleanly(proc, tmp, tmp_path, code)
+
+
+@pytest.mark.skipif(not Path("/proc/self/maps").exists(), reason="needs /proc to see what the program has loaded")
+def test_ctrl_c_while_the_program_imports_ends_quietly(long_stack, tmp_path):
+    """Ctrl-C while numpy, dask and numba load (inside main, before the analysis starts)."""
+    proc, tmp = _start(long_stack, tmp_path)
+    maps = Path(f"/proc/{proc.pid}/maps")
+    deadline = time.monotonic() + 60
+    while "numpy" not in maps.read_text():  # the numerical modules have begun to load
+        assert proc.poll() is None, proc.communicate()
+        assert time.monotonic() < deadline
+        time.sleep(0.005)
+    proc.send_signal(signal.SIGINT)
+    assert "interrupted" in _ended_cleanly(proc, tmp, tmp_path, 130)

@@ -90,12 +90,13 @@ def test_plane_wave_activation_delay_and_coherence(speed_um_s):
     assert np.nanmedian(res.coherence) > 0.9
 
 
-def test_coherence_high_on_tissue_low_off_it(well):
+def test_coherence_high_on_tissue_none_off_it(well):
     res = tempofield.analyze(tempofield.open_stack(well.frames, frame_interval_s=0.04, pixel_size_um=4.0), (20, 150))
     on = well.truth["regions"] > 0
     far = ~np.asarray(__import__("scipy.ndimage", fromlist=["x"]).binary_dilation(on, iterations=3))
     assert np.nanmedian(res.coherence[on]) > 0.9
-    assert np.nanmedian(res.coherence[far]) < 0.5
+    # away from the tissue there is no rhythm to follow: no coherence at all (not a low number)
+    assert np.all(np.isnan(res.coherence[far]))
     assert np.all(np.isnan(res.phase_rad[res.regions == 0]))
     ok = np.isfinite(res.phase_rad)
     assert np.all((res.phase_rad[ok] >= 0) & (res.phase_rad[ok] < 2 * np.pi))

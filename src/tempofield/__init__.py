@@ -22,9 +22,8 @@ from __future__ import annotations
 
 import importlib
 
-from tempofield._version import __version__
-
 _PUBLIC = {
+    "__version__": "tempofield._version",  # (its lookup reads the installed metadata: lazily too)
     "open_stack": "tempofield.engine.stack",
     "Stack": "tempofield.engine.stack",
     "analyze": "tempofield.engine.run",
@@ -36,7 +35,7 @@ _PUBLIC = {
     "InputError": "tempofield.errors",
 }
 
-__all__ = ["__version__", *_PUBLIC]
+__all__ = list(_PUBLIC)
 
 
 def __getattr__(name: str):

@@ -98,13 +98,17 @@ OPTIONS: tuple[Option, ...] = (
            "Specimen preset (sets the rate band when none is given and warns about implausible results): "
            f"{_SPECIMENS}; empty for none.",
            lambda v: v == "" or v in SPECIMENS, f"one of the specimen presets {_SPECIMENS}, or empty for none"),
+    Option("rate_unit", "", str,
+           "Unit of the rates in the summary, the report and regions.csv: bpm (beats per minute) or Hz "
+           "(beats per second; 1 Hz is 60 bpm). Empty: bpm, or Hz with the airway-cilia preset.",
+           lambda v: v in ("", "bpm", "Hz"), "bpm, Hz, or empty (bpm; Hz with the airway-cilia preset)"),
     Option("magnified_preview", False, bool,
            "Also write preview_magnified.tif: the first frames with the detected rhythm's band amplified "
            "(linear Eulerian magnification) so a subtle beat becomes visible.",
            None, "true or false"),
     Option("worker_processes", 0, int,
            "Helper programs that run the cycle-finding step (each region's rhythm reference, and the tile "
-           "loop-score map) beside the main one. 0 runs that step in the main program: simplest, and as fast "
+           "loop-score map) beside the main one. 0 runs that step in the main program: simplest, and right "
            "for the command line and scripts. In the napari viewer, 1 keeps the viewer responding instead of "
            "freezing while that step runs. More than 1 helps only when there are many beating regions; each "
            "helper takes about 0.3 GB of memory and a few seconds to start the first time. On a dask cluster "

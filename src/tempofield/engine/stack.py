@@ -1,16 +1,23 @@
 """Stacks: a lazy (T, Y, X) dask array with its frame interval and pixel size.
 
 :func:`open_stack` is the single door for data: TIFF (plain multi-page, ImageJ
-hyperstacks, OME-TIFF), Zarr v2/v3 arrays, OME-Zarr images, video files, and
-numpy or dask arrays. Nothing is read beyond metadata until a pass of the
-engine asks for pixels. Metadata found in the file is used; explicit arguments
-override it; a missing frame interval is an error that says how to give one.
+hyperstacks, OME-TIFF), a folder (or a glob pattern) of single-frame TIFF
+files, Zarr v2/v3 arrays, OME-Zarr images, video files, and numpy or dask
+arrays. Nothing is read beyond metadata until a pass of the engine asks for
+pixels. Metadata found in the file is used; explicit arguments override it; a
+missing frame interval is an error that says how to give one.
+
+Messages name the Python arguments (``frame_interval_s=0.02``); the command
+line shows its own flags instead (``--frame-interval 0.02``, see
+:func:`tempofield.cli.in_command_line_words`).
 """
 
 from __future__ import annotations
 
+import glob
 import hashlib
 import os
+import re
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,11 +38,43 @@ _LENGTH_TO_UM = {
     "nanometer": 1e-3, "nm": 1e-3, "millimeter": 1e3, "mm": 1e3,
     "centimeter": 1e4, "cm": 1e4, "meter": 1e6, "m": 1e6,
 }
+# Time: ImageJ's ``tunit`` (its default is "sec"; the micro sign is written
+# as µ or escaped as \u00B5), OME's TimeIncrementUnit (unit symbols, default
+# "s") and OME-Zarr's UDUNITS names. Looked up by :func:`seconds_per_time_unit`.
 _TIME_TO_S = {
-    "second": 1.0, "s": 1.0, "sec": 1.0, "millisecond": 1e-3, "ms": 1e-3,
-    "microsecond": 1e-6, "us": 1e-6, "µs": 1e-6, "minute": 60.0, "min": 60.0,
-    "hour": 3600.0, "h": 3600.0,
+    "second": 1.0, "seconds": 1.0, "s": 1.0, "sec": 1.0, "secs": 1.0,
+    "millisecond": 1e-3, "milliseconds": 1e-3, "ms": 1e-3, "msec": 1e-3,
+    "microsecond": 1e-6, "microseconds": 1e-6, "µs": 1e-6, "us": 1e-6, "usec": 1e-6, "µsec": 1e-6,
+    "nanosecond": 1e-9, "nanoseconds": 1e-9, "ns": 1e-9, "nsec": 1e-9,
+    "minute": 60.0, "minutes": 60.0, "min": 60.0, "mins": 60.0,
+    "hour": 3600.0, "hours": 3600.0, "h": 3600.0, "hr": 3600.0, "hrs": 3600.0,
 }
+
+#: A frame interval that means more frames per second than this is taken for a
+#: mistake (a number in the wrong unit, or broken metadata): the fastest cameras
+#: used on beating tissue, cilia included, record a few thousand frames per second.
+MAX_FRAMES_PER_S = 1e5
+
+#: What the messages about a frame interval give as typical values.
+TYPICAL_FRAME_INTERVALS = ("typical values are 0.001 to 0.1 s (1000 to 10 frames per second) for heart-muscle "
+                           "cells, zebrafish hearts and cilia; a value in milliseconds must be divided by 1000 "
+                           "(40 ms is 0.04)")
+
+
+def seconds_per_time_unit(unit) -> float | None:
+    """Seconds in one ``unit`` of time as microscopes and their software write it, or None if unknown.
+
+    Examples
+    --------
+    >>> seconds_per_time_unit("ms"), seconds_per_time_unit("sec"), seconds_per_time_unit("\\u00B5s")
+    (0.001, 1.0, 1e-06)
+    >>> seconds_per_time_unit("frame") is None
+    True
+    """
+    if unit is None:
+        return None
+    name = str(unit).strip().replace("\\u00B5", "µ").replace("\\u00b5", "µ").replace("\u03bc", "µ")
+    return _TIME_TO_S.get(name, _TIME_TO_S.get(name.lower()))
 
 
 @dataclass
@@ -52,9 +91,11 @@ class Stack:
         Edge length of a pixel, in micrometres; None when unknown (maps are then
         in pixels and conduction velocity in pixels per second).
     source : str
-        Where the data came from (a path, or ``"array"``).
+        Where the data came from (a path, a glob pattern of frame files, or ``"array"``).
     meta : dict
         Where each value came from, the file's axes, the chosen channel/plane.
+    files : tuple of str
+        For a sequence of frame files, the files in frame order (empty otherwise).
     """
 
     data: da.Array
@@ -62,6 +103,7 @@ class Stack:
     pixel_size_um: float | None = None
     source: str = "array"
     meta: dict = field(default_factory=dict)
+    files: tuple = field(default=(), repr=False)
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -90,14 +132,25 @@ class Stack:
             if self.meta.get(key) is not None:
                 ident[key] = self.meta[key]
         path = Path(self.source)
-        if self.source != "array" and path.exists():
-            files = [path] if path.is_file() else [p for p in path.rglob("*") if p.is_file()]
+        if self.files or (self.source != "array" and path.exists()):
+            if self.files:
+                files = [Path(p) for p in self.files]
+            else:
+                files = [path] if path.is_file() else [p for p in path.rglob("*") if p.is_file()]
             ident["bytes"] = int(sum(p.stat().st_size for p in files))
             ident["mtime"] = max((p.stat().st_mtime for p in files), default=0.0)
         else:
             probe = np.asarray(self.data[:: max(1, self.n_frames // 4)][:4, :64, :64])
             ident["probe_sha1"] = hashlib.sha1(np.ascontiguousarray(probe).tobytes()).hexdigest()
         return ident
+
+    def input_paths(self) -> list[str]:
+        """The files and folders the data is read from, which no output may replace or lie in."""
+        if self.source == "array":
+            return []
+        if self.files:
+            return sorted({self.source, *{os.path.dirname(f) for f in self.files}} - {""})
+        return [self.source]
 
 
 def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: float | None = None,
@@ -109,15 +162,18 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
     ----------
     source : str, os.PathLike, ndarray or dask.array.Array
         A path to a TIFF / ImageJ / OME-TIFF file, a Zarr array or OME-Zarr
-        image folder, or a video file (AVI, MP4, MOV); or an array. Arrays are
-        taken as (T, Y, X) unless ``axes`` says otherwise.
+        image folder, a folder of single-frame TIFF files (one file per frame,
+        in natural name order: frame2 before frame10), a glob pattern of such
+        files (``"frames/*.tif"``), or a video file (AVI, MP4, MOV); or an
+        array. Arrays are taken as (T, Y, X) unless ``axes`` says otherwise.
     frame_interval_s : float, optional
         Seconds between frames. Overrides the file's metadata. Required when
-        the file has none (and for arrays).
+        the file has none (and for arrays and frame-file sequences).
     pixel_size_um : float, optional
         Pixel edge in micrometres. Overrides the file's metadata.
     channel, plane : int, optional
-        Which channel (C) or focal plane (Z) to analyse when the data has them.
+        Which channel (C) or focal plane (Z) to analyse when the data has them,
+        counted from 0 (the first channel is 0).
     axes : str, optional
         Axis letters of an array source, e.g. ``"TCYX"`` (T, C, Z, Y, X, and S
         for RGB samples).
@@ -160,12 +216,23 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
         meta = {"axes": arr_axes, **chosen}
         return _finish(data, {}, frame_interval_s, pixel_size_um, "array", meta)
 
-    path = Path(os.fspath(source))
+    text = os.fspath(source)
+    path = Path(text)
+    if not path.exists() and _GLOB_CHARS.search(str(text)):
+        files = _glob_frame_files(str(text))
+        data, file_meta, meta = _open_sequence(files, channel, plane)
+        return _finish(data, file_meta, frame_interval_s, pixel_size_um, os.path.abspath(text), meta,
+                       files=tuple(str(f) for f in files))
     if not path.exists():
         raise StackNotFoundError(
             f"no such stack: {str(path)!r}. Check the path (it is taken relative to "
             f"{os.getcwd()!r}).")
     name = path.name.lower()
+    if path.is_dir() and not _is_zarr_store(path):
+        files = _folder_frame_files(path)
+        data, file_meta, meta = _open_sequence(files, channel, plane)
+        return _finish(data, file_meta, frame_interval_s, pixel_size_um, str(path.resolve()), meta,
+                       files=tuple(str(f) for f in files))
     if path.is_dir() or name.endswith(".zarr"):
         data, file_meta, meta = _open_zarr(path, channel, plane)
     elif name.endswith(TIFF_SUFFIXES):
@@ -175,12 +242,12 @@ def open_stack(source, frame_interval_s: float | None = None, pixel_size_um: flo
     else:
         raise InputError(
             f"cannot read {str(path)!r}: unknown file type {path.suffix!r}. tempofield reads "
-            f"TIFF ({', '.join(TIFF_SUFFIXES)}), Zarr/OME-Zarr folders and video "
+            f"TIFF ({', '.join(TIFF_SUFFIXES)}), folders of TIFF frames, Zarr/OME-Zarr folders and video "
             f"({', '.join(VIDEO_SUFFIXES)}); convert other formats to TIFF first.")
     return _finish(data, file_meta, frame_interval_s, pixel_size_um, str(path.resolve()), meta)
 
 
-def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta) -> Stack:
+def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta, files=()) -> Stack:
     if data.ndim != 3:
         raise InputError(f"expected (T, Y, X) frames from {source!r}, found shape {tuple(data.shape)}.")
     if frame_interval_s is not None:
@@ -190,16 +257,26 @@ def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta) -> S
         fi = file_meta.get("frame_interval_s")
         meta["frame_interval_from"] = file_meta.get("frame_interval_from", "file")
     if fi is None:
+        why = file_meta.get("frame_interval_problem", "the file does not record the time between frames")
         raise MissingMetadataError(
-            f"no frame interval for {source!r}: the file does not record the time between frames. "
-            "Give it explicitly: frame_interval_s=0.02 in Python, or --frame-interval 0.02 on the "
-            "command line (seconds between frames; 50 frames per second is 0.02).")
+            f"no frame interval for {source!r}: {why}. Give it explicitly: frame_interval_s=0.02 "
+            "(seconds between frames; 50 frames per second is 0.02).")
     try:
         fi = float(fi)
     except (TypeError, ValueError):
         raise InputError(f"frame_interval_s={fi!r} is not a number of seconds.") from None
     if not (np.isfinite(fi) and fi > 0):
         raise InputError(f"frame_interval_s={fi!r} must be a positive number of seconds, e.g. 0.02.")
+    if 1.0 / fi > MAX_FRAMES_PER_S:
+        if meta["frame_interval_from"] == "argument":
+            said = f"frame_interval_s={fi:g} looks wrong"
+        else:
+            said = (f"the frame interval recorded in {source!r} ({meta['frame_interval_from']}) is {fi:g} s, "
+                    "which looks wrong")
+        raise InputError(
+            f"{said}: it means {1.0 / fi:.3g} frames per second, far more than cameras record of beating "
+            f"tissue (at most a few thousand). Give the time between frames in seconds, e.g. "
+            f"frame_interval_s=0.02 for 50 frames per second; {TYPICAL_FRAME_INTERVALS}.")
     if pixel_size_um is not None:
         meta["pixel_size_from"] = "argument"
         ps = pixel_size_um
@@ -219,7 +296,7 @@ def _finish(data, file_meta, frame_interval_s, pixel_size_um, source, meta) -> S
                          "needs at least 8 frames (and in practice several cycles of the slowest rhythm).")
     if not (np.issubdtype(data.dtype, np.number) or data.dtype == bool):
         raise InputError(f"{source!r} holds {data.dtype} values; tempofield needs numeric pixels.")
-    return Stack(data=data, frame_interval_s=fi, pixel_size_um=ps, source=source, meta=meta)
+    return Stack(data=data, frame_interval_s=fi, pixel_size_um=ps, source=source, meta=meta, files=tuple(files))
 
 
 def _reduce_axes(data, axes: str, channel, plane, where: str):
@@ -250,9 +327,10 @@ def _reduce_axes(data, axes: str, channel, plane, where: str):
         elif choice is None:
             raise InputError(
                 f"{where} has {n} {opt}s (axes {axes}, shape {tuple(data.shape)}); choose one with "
-                f"{opt}=N in Python or --{opt} N on the command line (0 to {n - 1}).")
+                f"{opt}=N, counted from 0: 0 to {n - 1} (the first {opt} is 0).")
         if not (0 <= int(choice) < n):
-            raise InputError(f"{opt}={choice} is out of range: {where} has {n} {opt}s (0 to {n - 1}).")
+            raise InputError(f"{opt}={choice} is out of range: {where} has {n} {opt}s, counted from 0, so use "
+                             f"0 to {n - 1} (the first {opt} is 0, the last {n - 1}).")
         data = da.take(data, int(choice), axis=ax)
         chosen[opt] = int(choice)
         axes = axes.replace(letter, "")
@@ -263,7 +341,8 @@ def _reduce_axes(data, axes: str, channel, plane, where: str):
             what = "a single image" if axes in ("YX", "YXS") else f"axes {axes}"
             raise InputError(f"{where} holds {what} with no time axis: there is no time series to analyse. "
                              "tempofield needs a (T, Y, X) stack of at least 8 frames; if the frames were saved "
-                             "as separate files, combine them into one stack first.")
+                             "as separate files, give their folder (or a pattern such as 'frames/*.tif') "
+                             "instead of one file.")
     extra = [a for a in axes if a not in "TYX"]
     if extra or len(axes) != 3:
         raise InputError(f"{where} has axes {axes} after choosing channel/plane; expected T, Y, X.")
@@ -325,8 +404,7 @@ def _tiff_header(path: Path) -> tuple[str, dict[str, Any], bool]:
                     ij = tif.imagej_metadata
                     expected = int(ij.get("images", 0) or 0) or None
                     if ij.get("finterval") and "frame_interval_s" not in file_meta:
-                        file_meta["frame_interval_s"] = float(ij["finterval"])
-                        file_meta["frame_interval_from"] = "ImageJ finterval"
+                        file_meta.update(_imagej_frame_interval(ij))
                     if "pixel_size_um" not in file_meta:
                         ps = _tiff_resolution_um(tif.pages[0], ij.get("unit"))
                         if ps is not None:
@@ -411,6 +489,22 @@ def _tiff_resolution_um(page, unit) -> float | None:
     return float(scale / px_per_unit)
 
 
+def _imagej_frame_interval(ij: dict) -> dict[str, Any]:
+    """The frame interval of an ImageJ header: ``finterval`` in the unit ``tunit`` (ImageJ's default "sec")."""
+    unit = ij.get("tunit") or "sec"
+    scale = seconds_per_time_unit(unit)
+    try:
+        value = float(ij["finterval"])
+    except (TypeError, ValueError):
+        return {"frame_interval_problem": f"its ImageJ frame interval {ij['finterval']!r} is not a number"}
+    if scale is None:
+        return {"frame_interval_problem": f"its ImageJ frame interval is {value:g} in the unit {unit!r}, which is "
+                                          "not a unit of time tempofield knows (s, ms, µs, min, h)"}
+    shown = str(unit).replace("\\u00B5", "µ").replace("\\u00b5", "µ")
+    said = "ImageJ finterval" if "tunit" not in ij else f"ImageJ finterval {value:g} {shown}"
+    return {"frame_interval_s": value * scale, "frame_interval_from": said}
+
+
 def _ome_xml_meta(xml: str) -> dict[str, Any]:
     out: dict[str, Any] = {}
     try:
@@ -422,16 +516,22 @@ def _ome_xml_meta(xml: str) -> dict[str, Any]:
         return out
     ti = pixels.get("TimeIncrement")
     if ti:
-        unit = pixels.get("TimeIncrementUnit", "s")
-        out["frame_interval_s"] = float(ti) * _TIME_TO_S.get(unit, 1.0)
-        out["frame_interval_from"] = "OME TimeIncrement"
+        unit = pixels.get("TimeIncrementUnit", "s")  # the OME schema's default
+        scale = seconds_per_time_unit(unit)
+        if scale is None:
+            out["frame_interval_problem"] = (f"its OME TimeIncrement is {ti} in the unit {unit!r}, which is not a "
+                                             "unit of time tempofield knows (s, ms, µs, min, h)")
+        else:
+            out["frame_interval_s"] = float(ti) * scale
+            out["frame_interval_from"] = "OME TimeIncrement" + ("" if unit == "s" else f" {ti} {unit}")
     else:
         deltas = []
         for el in pixels:
             if el.tag.endswith("Plane") and el.get("DeltaT") is not None and el.get("TheC", "0") == "0" \
                     and el.get("TheZ", "0") == "0":
-                deltas.append((int(el.get("TheT", "0")),
-                               float(el.get("DeltaT")) * _TIME_TO_S.get(el.get("DeltaTUnit", "s"), 1.0)))
+                scale = seconds_per_time_unit(el.get("DeltaTUnit", "s"))
+                if scale is not None:
+                    deltas.append((int(el.get("TheT", "0")), float(el.get("DeltaT")) * scale))
         if len(deltas) >= 2:
             deltas.sort()
             steps = np.diff([d for _, d in deltas]) / np.maximum(np.diff([t for t, _ in deltas]), 1)
@@ -444,6 +544,117 @@ def _ome_xml_meta(xml: str) -> dict[str, Any]:
         if scale is not None:
             out["pixel_size_um"] = float(px) * scale
     return out
+
+
+# --------------------------------------------------------------------------- TIFF frame files
+_GLOB_CHARS = re.compile(r"[*?\[]")
+
+# What marks a folder as a Zarr store: zarr v3's zarr.json, zarr v2's .zarray / .zgroup.
+_ZARR_MARKERS = ("zarr.json", ".zarray", ".zgroup")
+
+
+def _is_zarr_store(path: Path) -> bool:
+    return any((path / marker).is_file() for marker in _ZARR_MARKERS)
+
+
+def _natural_key(path) -> list:
+    """Sort key that orders numbers by value: frame2 before frame10."""
+    return [int(part) if part.isdigit() else part.lower() for part in re.split(r"(\d+)", os.fspath(path))]
+
+
+def _is_frame_file(path: Path) -> bool:
+    # not hidden files, such as the "._name.tif" copies macOS leaves on shared disks
+    return path.is_file() and path.name.lower().endswith(TIFF_SUFFIXES) and not path.name.startswith(".")
+
+
+def _folder_frame_files(folder: Path) -> list[Path]:
+    """The TIFF files directly in ``folder``, in natural name order, or an error saying what the folder is not."""
+    base = folder.resolve()
+    files = sorted((base / p.name for p in folder.iterdir() if _is_frame_file(p)), key=lambda p: _natural_key(p.name))
+    if files:
+        return files
+    names = sorted(p.name for p in folder.iterdir() if not p.name.startswith("."))
+    holds = (f"it holds {len(names)} item{'s' if len(names) != 1 else ''}: {', '.join(names[:5])}"
+             f"{', ...' if len(names) > 5 else ''}" if names else "it is empty")
+    raise InputError(
+        f"cannot read the folder {str(folder)!r}: tempofield reads a folder when it is a Zarr or OME-Zarr store "
+        f"(with a zarr.json, .zarray or .zgroup file in it) or when it holds one TIFF file per frame "
+        f"({', '.join(TIFF_SUFFIXES)}); {holds}. Give the path of the stack file itself, or of the folder that "
+        "holds the frames.")
+
+
+def _glob_frame_files(pattern: str) -> list[Path]:
+    """The files matching a glob pattern such as ``frames/*.tif``, in natural name order."""
+    files = sorted((Path(os.path.abspath(p)) for p in glob.glob(pattern) if os.path.isfile(p)), key=_natural_key)
+    if not files:
+        raise StackNotFoundError(
+            f"no files match {pattern!r}. Check the pattern (it is taken relative to {os.getcwd()!r}); "
+            "on the command line put it in quotes, e.g. 'frames/*.tif', so it reaches tempofield whole.")
+    other = [f.name for f in files if not f.name.lower().endswith(TIFF_SUFFIXES)]
+    if other:
+        raise InputError(
+            f"{pattern!r} matches {len(other)} file{'s' if len(other) != 1 else ''} that are not TIFF "
+            f"({', '.join(other[:3])}{', ...' if len(other) > 3 else ''}); a pattern must name TIFF frame files "
+            "only, e.g. 'frames/*.tif'.")
+    return files
+
+
+def _open_sequence(files: list[Path], channel, plane):
+    """One frame per TIFF file, read lazily: a dask array with one chunk per file.
+
+    Only the first file is opened here (for the frame's shape, number type and
+    pixel size); every file is read when a pass of the engine needs its frame.
+    The frame interval is not taken from the files (a single frame records
+    none): it must be given.
+    """
+    import tifffile
+
+    first = files[0]
+    _, first_meta, _ = _tiff_header(first)
+    with tifffile.TiffFile(first) as tif:
+        series = tif.series[0]
+        shape, axes, dtype = tuple(series.shape), series.axes, np.dtype(series.dtype)
+    kept = [(n, a) for n, a in zip(shape, axes) if n != 1 or a in "YXS"]
+    frame_shape = tuple(n for n, _ in kept)
+    frame_axes = "".join(a for _, a in kept)
+    where = f"the {len(files)} TIFF frames in {str(first.parent)!r}"
+    if any(a in "TIQ" for a in frame_axes):
+        n_images = int(np.prod([n for n, a in kept if a not in "YXS"], dtype=np.int64))
+        raise InputError(
+            f"{str(first)!r} holds {n_images} images (axes {axes}, shape {shape}), not one frame: tempofield "
+            "reads a folder or pattern of TIFF files as one frame per file. Give a multi-frame file on its own "
+            "instead (or many of them with tempofield batch).")
+    token = hashlib.sha1("\n".join(f"{f}:{f.stat().st_mtime_ns}" for f in files).encode()).hexdigest()[:16]
+    name = f"tiff-frames-{token}"
+    graph = {(name, i) + (0,) * len(frame_shape): (_read_frame_file, str(f), frame_shape, dtype, str(first))
+             for i, f in enumerate(files)}
+    data = da.Array(graph, name, chunks=((1,) * len(files),) + tuple((n,) for n in frame_shape), dtype=dtype)
+    data, chosen = _reduce_axes(data, "T" + frame_axes, channel, plane, where)
+    file_meta = {"frame_interval_problem": "a sequence of single-frame TIFF files does not record the time "
+                                           "between frames"}
+    if first_meta.get("pixel_size_um") is not None:
+        file_meta["pixel_size_um"] = first_meta["pixel_size_um"]
+    meta = {"axes": "T" + frame_axes, "format": "tiff-sequence", "n_files": len(files), "first_file": str(first),
+            "last_file": str(files[-1]), **chosen}
+    return data, file_meta, meta
+
+
+def _read_frame_file(path: str, frame_shape: tuple, dtype, first: str) -> np.ndarray:
+    """One frame file as a (1, *frame_shape) block; a file whose frame differs from the first is an error."""
+    import tifffile
+
+    try:
+        frame = tifffile.imread(path)
+    except Exception as exc:  # tifffile raises several types for broken files
+        raise InputError(f"cannot read the frame file {path!r} as TIFF ({type(exc).__name__}: {exc}). "
+                         "Is the file complete?") from None
+    if frame.size != int(np.prod(frame_shape, dtype=np.int64)) or frame.dtype != dtype:
+        raise InputError(
+            f"the frame file {path!r} holds a {frame.dtype} image of shape {frame.shape}, but the first file "
+            f"{first!r} holds {dtype} frames of shape {frame_shape}: every frame of a sequence must have the "
+            "same size and number type. Remove the odd file, or move the frames that belong together into "
+            "a folder of their own.")
+    return frame.reshape((1,) + frame_shape)
 
 
 # --------------------------------------------------------------------------- Zarr
@@ -476,7 +687,7 @@ def _open_zarr(path: Path, channel, plane):
         for name, ax_md, sc in zip(names, axes_md, scale):
             unit = ax_md.get("unit") if isinstance(ax_md, dict) else None
             if name == "t":
-                factor = _TIME_TO_S.get(unit or "", None)
+                factor = seconds_per_time_unit(unit)
                 if factor is not None:
                     file_meta["frame_interval_s"] = sc * factor
                     file_meta["frame_interval_from"] = "OME-Zarr scale"

@@ -260,6 +260,10 @@ FROZEN_LIMIT = 0.85
 #: codec's flicker as a whole: a camera sees noise on tissue in every frame.
 REGION_FROZEN_LIMIT = 0.7
 
+#: ... and a rhythm at the key-frame rate is taken for codec flicker only where the pixel repeats over
+#: more than this share of the steps (partly still picture).
+STILL_LIMIT = 0.3
+
 
 def codec_flicker(run: Run) -> Iterator[Progress]:
     """Lossy video: what the coding did is not a rhythm.
@@ -271,7 +275,8 @@ def codec_flicker(run: Run) -> Iterator[Progress]:
     pixel never does) are not rhythmic; (2) when the key frames recur often
     enough for their rate to be resolved (at least three frequency bins
     apart), rhythms within one bin of the key-frame rate or its multiples
-    are not taken either. :func:`segmentation` then drops regions whose
+    are not taken either where the picture is partly still (repeats over
+    more than :data:`STILL_LIMIT` of the steps). :func:`segmentation` then drops regions whose
     median frozen share exceeds :data:`REGION_FROZEN_LIMIT`, and
     :func:`locked_detection` leaves frozen pixels out.
 
@@ -302,7 +307,8 @@ def codec_flicker(run: Run) -> Iterator[Progress]:
         if key_bpm >= 3 * bin_bpm:
             rate = m["rate_bpm"]
             nearest = np.round(rate / key_bpm) * key_bpm
-            at_keys = detected & (nearest > 0) & (np.abs(rate - nearest) <= bin_bpm)
+            # only where the picture is partly still: a pixel that changes every frame is seen, not coded
+            at_keys = detected & (nearest > 0) & (np.abs(rate - nearest) <= bin_bpm) & (frozen > STILL_LIMIT)
             excluded |= at_keys
             comb = f"; rhythms at the key-frame rate {key_bpm:.1f} bpm or its multiples were not taken"
     for key in ("rate_bpm", "period_s", "amplitude"):
@@ -675,7 +681,8 @@ def assemble(run: Run) -> Iterator[Progress]:
         delay_s=run.delay_s, regions=run.labels, region_table=table, references=run.references,
         frame_interval_s=stack.frame_interval_s, pixel_size_um=stack.pixel_size_um,
         parameters={"rate_range_bpm": list(run.rate_range_bpm), **opts,
-                    "rate_unit": opts["rate_unit"] or ("Hz" if opts["specimen"] in HZ_SPECIMENS else "bpm"),
+                    # (the option as given stays under "rate_unit": the batch runner compares it)
+                    "rate_unit_shown": opts["rate_unit"] or ("Hz" if opts["specimen"] in HZ_SPECIMENS else "bpm"),
                     "warnings": run.warnings,
                     "gram_bin_px": run.gram_bin, "tile_shape_px": list(run.tiles.tile_shape),
                     "phase_source": run.phase_source, "video_coding": run.video,

@@ -5,14 +5,9 @@ wraps what these readers return into lazy arrays."""
 
 from __future__ import annotations
 
-import importlib
+import lazy_loader
 
-__all__ = ["atomic", "omezarr", "video"]
-
-
-def __getattr__(name: str):
-    if name in __all__:
-        module = importlib.import_module(f"{__name__}.{name}")
-        globals()[name] = module
-        return module
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+__getattr__, __dir__, __all__ = lazy_loader.attach(
+    __name__, submodules=[
+    "atomic", "omezarr", "video",
+    ])

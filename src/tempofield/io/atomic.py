@@ -18,27 +18,54 @@ from pathlib import Path
 def check_replaceable(dest, is_ours, what: str, protect=()) -> Path:
     """Refuse to replace ``dest`` unless it is one of our own outputs (``is_ours(dest)``) or empty.
 
-    ``protect`` lists paths (inputs) that must not lie inside ``dest``. Returns
-    the resolved destination.
+    ``protect`` lists paths (inputs: files, folders, or glob patterns of frame
+    files) that ``dest`` may neither hold nor lie inside. A ``dest`` below an
+    existing file is refused too (no folder can be made there). Returns the
+    resolved destination.
 
     Raises
     ------
     ResultExistsError
         When replacing ``dest`` would delete something that is not ours.
+    InputError
+        When ``dest`` lies inside an input, or below a file.
     """
-    from tempofield.errors import ResultExistsError
+    from tempofield.errors import InputError, ResultExistsError
 
     dest = Path(dest).resolve()
     for p in protect:
-        p = Path(p).resolve()
+        p = _fixed_part(Path(p)).resolve()
         if p == dest or dest in p.parents:
             raise ResultExistsError(f"the output folder {str(dest)!r} holds the input {str(p)!r}; choose an output "
                                     "folder outside the data.")
-    if dest.exists() and not (dest.is_dir() and (not any(dest.iterdir()) or is_ours(dest))):
+        if p in dest.parents:
+            raise InputError(
+                f"the output folder {str(dest)!r} lies inside the input {str(p)!r}; tempofield never writes into "
+                f"its input, and nothing was written. Choose an output folder outside it, e.g. "
+                f"{str(p.parent / (p.name.split('.')[0] + '-results'))!r}.")
+    blocker = next((a for a in dest.parents if a.exists() and not a.is_dir()), None)
+    if blocker is not None:
+        raise InputError(
+            f"cannot make the output folder {str(dest)!r}: {str(blocker)!r} is a file, not a folder, so no folder "
+            "can be made inside it. Choose an output folder elsewhere, e.g. "
+            f"{str(blocker.parent / (blocker.name.split('.')[0] + '-results'))!r}.")
+    if dest.exists() and not dest.is_dir():
         raise ResultExistsError(
-            f"{str(dest)!r} exists and is not a {what}; it was left untouched. --overwrite only replaces an "
-            f"earlier {what}: choose another output folder.")
+            f"{str(dest)!r} is a file, not a folder; it was left untouched. Choose another output folder.")
+    if dest.exists() and not (not any(dest.iterdir()) or is_ours(dest)):
+        raise ResultExistsError(
+            f"{str(dest)!r} exists and is not a {what}; it was left untouched. overwrite=True only replaces "
+            f"an earlier {what}: choose another output folder.")
     return dest
+
+
+def _fixed_part(path: Path) -> Path:
+    """A path up to its first component with glob characters (``frames/*.tif`` -> ``frames``)."""
+    parts = path.parts
+    for i, part in enumerate(parts):
+        if any(c in part for c in "*?["):
+            return Path(*parts[:i]) if i else Path(".")
+    return path
 
 
 @contextmanager

@@ -8,7 +8,13 @@ from __future__ import annotations
 
 import importlib
 
-__all__ = ["preprocess", "spectral", "embedding", "topology", "reference", "rhythm", "phase", "regions", "propagation", "magnify"]
+import lazy_loader
+
+__getattr__, __dir__, __all__ = lazy_loader.attach(
+    __name__, submodules=[
+    "preprocess", "spectral", "embedding", "topology", "reference", "rhythm", "phase", "regions",
+    "propagation", "magnify",
+    ])
 
 
 #: The private modules of compiled loops, one beside each kernel that has any.
@@ -26,11 +32,3 @@ def warm_up() -> None:
     """
     for name in LOOP_MODULES:
         importlib.import_module(f"{__name__}.{name}").warm_up()
-
-
-def __getattr__(name: str):
-    if name in __all__:
-        module = importlib.import_module(f"{__name__}.{name}")
-        globals()[name] = module
-        return module
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -76,7 +76,7 @@ class RhythmResult:
     @property
     def rate_unit(self) -> str:
         """``"bpm"`` or ``"Hz"``: the unit of rates in the tables and figures of this result (the maps are in bpm)."""
-        return "Hz" if self.parameters.get("rate_unit") == "Hz" else "bpm"
+        return "Hz" if self.parameters.get("rate_unit_shown", self.parameters.get("rate_unit")) == "Hz" else "bpm"
 
     def summary(self) -> dict[str, Any]:
         """A few headline numbers: rhythmic area, median rate and its spread."""
