@@ -49,6 +49,11 @@ def process_pool(n_workers: int):
 
     if n_workers < 1 or multiprocessing.current_process().daemon:
         return None
+    if not main_is_guarded():
+        warnings.warn("the running script has no `if __name__ == \"__main__\":` guard, so worker processes "
+                      "would run it again; the references run in this thread instead.", RuntimeWarning,
+                      stacklevel=3)
+        return None
     if _POOL is None or _POOL[1] != n_workers:
         import atexit
         from concurrent.futures import ProcessPoolExecutor
@@ -59,6 +64,26 @@ def process_pool(n_workers: int):
         atexit.register(pool.shutdown, wait=False, cancel_futures=True)
         _POOL = (pool, n_workers)
     return _POOL[0]
+
+
+def main_is_guarded() -> bool:
+    """False when the program's main script has no ``__main__`` guard: a spawned worker would run it again.
+
+    Spawned processes import the parent's main script to rebuild its state;
+    a script written like napari's examples (a viewer made at module level)
+    would open a second viewer there and never return. Interactive sessions,
+    notebooks, ``python -c`` and installed commands have no script to re-run
+    (or one that is guarded), so they count as guarded.
+    """
+    main = sys.modules.get("__main__")
+    path = getattr(main, "__file__", None)
+    if not path or getattr(main, "__spec__", None) is not None:  # no script, or run with -m (a module)
+        return True
+    try:
+        with open(path, encoding="utf-8", errors="ignore") as f:
+            return "__main__" in f.read()
+    except OSError:
+        return True
 
 
 def run_in_processes(jobs: dict, n_processes: int):

@@ -49,9 +49,12 @@ from ._layers import META_KEY, REGION_CONTOUR_PX, result_layer_data
 PRIMARY_OPTIONS = ("pooling_radius_px",)
 #: Options set by the specimen list rather than their own field.
 COMBO_OPTIONS = ("specimen",)
-#: Where the panel starts from other values than the engine's defaults, and why:
-#: ripser holds Python's GIL, so in the viewer it runs in a worker process.
-GUI_DEFAULTS = {"worker_processes": 1}
+#: Where the panel starts from other values than the engine's defaults, and why. The
+#: references run in the panel's own worker thread (the engine's default, 0 processes):
+#: ripser holds Python's GIL only tens of milliseconds at a time, which the viewer
+#: absorbs, while a spawned process would re-run a user's script that has no
+#: ``__main__`` guard (a second viewer, and a run that never ends).
+GUI_DEFAULTS: dict = {}
 CUSTOM_BAND = "custom band"
 
 
