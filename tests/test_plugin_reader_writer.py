@@ -52,7 +52,7 @@ def test_writer_then_reader_round_trip(result, tmp_path):
     read = {attrs["name"]: (data, attrs, kind) for data, attrs, kind in reader(str(out))}
     rate = read["saved · rate (bpm)"]
     np.testing.assert_array_equal(rate[0], result.rate_bpm)
-    assert rate[1]["colormap"] == "turbo" and rate[1]["scale"] == (4.0, 4.0)
+    assert rate[1]["colormap"] == "viridis" and rate[1]["scale"] == (4.0, 4.0)
     assert rate[1]["metadata"]["tempofield"]["unit"] == "1/minute"
     phase = read["saved · phase (rad)"]
     assert phase[1]["colormap"] == "twilight" and phase[1]["contrast_limits"] == (0.0, 2 * math.pi)
@@ -119,5 +119,5 @@ def test_save_and_open_through_the_viewer(make_napari_viewer, result, tmp_path):
     viewer.open(str(out), plugin="tempofield")
     rate = viewer.layers["from_viewer · rate (bpm)"]
     np.testing.assert_array_equal(rate.data, result.rate_bpm)
-    assert rate.colormap.name == "turbo"
+    assert rate.colormap.name == "viridis"
     np.testing.assert_allclose(rate.scale, (4.0, 4.0))

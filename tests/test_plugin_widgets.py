@@ -107,7 +107,7 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
         assert info["version"] == tempofield.__version__
         assert info["parameters"]["pooling_radius_px"] == 2
         assert info["parameters"]["rate_range_bpm"] == list(FAST_BAND)
-    assert rate.colormap.name == "turbo" and phase.colormap.name == "twilight"
+    assert rate.colormap.name == "viridis" and phase.colormap.name == "twilight"
     assert phase.contrast_limits == pytest.approx([0.0, 2 * math.pi])
     finite = expected.rate_bpm[np.isfinite(expected.rate_bpm)]
     assert rate.contrast_limits == pytest.approx(list(np.percentile(finite, [1, 99])), rel=1e-5)
@@ -265,3 +265,38 @@ def test_inspector_shows_a_clicked_region_and_exports(panel, scene, qtbot, tmp_p
     spec_ax = inspector.figures["spectrum"].axes[0]
     peak = [ln for ln in spec_ax.lines if ln.get_label().startswith("peak")]
     assert peak  # whatever region 2 is in this result, its spectrum is drawn
+
+
+def test_results_are_readable_by_default(panel, scene, qtbot):
+    """After a run: the rate layer is selected (hovering reads bpm), every map shows its colour bar,
+    the rate colormap's ends differ in lightness, the delay's colours span the regions' own delays,
+    the conduction arrows start hidden with colours not set by outliers, and the panel showed its progress."""
+    viewer = panel.viewer
+    add_scene(viewer, scene)
+    panel.rate_lo.setValue(FAST_BAND[0])
+    panel.rate_hi.setValue(FAST_BAND[1])
+    seen = []
+    panel.status.setText("")
+    timer = QTimer()
+    timer.timeout.connect(lambda: seen.append(panel.status.text()))
+    timer.start(5)
+    run_panel(qtbot, panel)
+    timer.stop()
+    layers = {layer.name: layer for layer in result_layers(viewer, "well sheet")}
+    rate = layers["well sheet · rate (bpm)"]
+    assert viewer.layers.selection.active is rate
+    for name, layer in layers.items():
+        if layer._type_string == "image":
+            assert layer.colorbar.visible, name
+    lightness = np.asarray(rate.colormap.colors)[:, :3] @ [0.299, 0.587, 0.114]
+    assert abs(lightness[-1] - lightness[0]) > 0.5
+    delay = layers["well sheet · activation delay (s)"]
+    finite = delay.data[np.isfinite(delay.data)]
+    assert delay.contrast_limits == pytest.approx(list(np.percentile(finite, [1, 99])), rel=1e-5)
+    assert delay.contrast_limits[1] < np.nanmax(panel.last_result.period_s)
+    vectors = [layer for name, layer in layers.items() if name.endswith("conduction velocity")]
+    for layer in vectors:
+        assert not layer.visible
+        speed = layer.features.iloc[:, 0].to_numpy()
+        assert layer.edge_contrast_limits[1] <= np.percentile(speed, 99) + 1e-6
+    assert any("%" in text and text.startswith("Analysing:") for text in seen)

@@ -44,16 +44,18 @@ class MapStyle:
 
     title: str
     colormap: str
-    limits: str  # "robust", "unit" (0..1), "cyclic" (0..2 pi), "period" (0..max period)
+    limits: str  # "robust" (1st-99th percentile), "unit" (0..1), "cyclic" (0..2 pi), "period" (0..max period)
     visible: bool
 
 
 #: Maps shown as image layers, bottom to top.
 MAP_STYLES: dict[str, MapStyle] = {
-    "periodicity": MapStyle("periodicity", "viridis", "unit", False),
-    "delay_s": MapStyle("activation delay (s)", "plasma", "period", False),
+    "periodicity": MapStyle("periodicity", "cividis", "unit", False),
+    # the delay's range is the regions' own spread (a 0-0.3 s wave is not one flat colour in 0-1.5 s)
+    "delay_s": MapStyle("activation delay (s)", "plasma", "robust", False),
     "phase_rad": MapStyle("phase (rad)", "twilight", "cyclic", False),
-    "rate_bpm": MapStyle("rate (bpm)", "turbo", "robust", True),
+    # perceptually uniform, its ends differ in lightness (so they stay apart in grey too)
+    "rate_bpm": MapStyle("rate (bpm)", "viridis", "robust", True),
 }
 REGIONS_TITLE = "regions"
 VELOCITY_TITLE = "conduction velocity"
@@ -137,9 +139,11 @@ def result_layer_data(result: RhythmResult, source: str, *, scale=None, translat
         data, speed = vectors
         _, unit = _velocity_keys(result.extra_maps)
         feature = "speed_um_s" if unit.startswith("micro") else "speed_px_s"
+        lo, hi = contrast_limits(speed, "robust")  # a few outliers near a pacemaker must not set the colours
         out.append((data, {
             "name": layer_name(source, VELOCITY_TITLE), "features": {feature: speed},
-            "edge_color": feature, "edge_colormap": "magma", "edge_width": 1.0, "vector_style": "arrow",
+            "edge_color": feature, "edge_colormap": "magma", "edge_contrast_limits": (lo, hi),
+            "edge_width": 1.0, "vector_style": "arrow", "visible": False,
             "metadata": provenance(result, source, "velocity", run_id, unit=unit, **extra_meta),
             **spatial}, "vectors"))
     return out

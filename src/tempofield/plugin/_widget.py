@@ -364,6 +364,10 @@ class AnalysisPanel(QWidget):
         pbar.set_description(f"tempofield: {tick.stage}")
         if self._pbar is pbar:
             pbar.update(tick.done - pbar.n)
+        stopping = self._stop_reported or (self._cancel is not None and self._cancel.is_set())
+        if tick.total and not stopping:  # progress in the panel itself (napari's activity dock is hidden)
+            self.status.setText(f"Analysing: {tick.stage}, {tick.done} of {tick.total} "
+                                f"({100 * tick.done / tick.total:.0f} %)")
 
     def _on_result(self, result, source, place):
         self.last_result = result
@@ -382,11 +386,17 @@ class AnalysisPanel(QWidget):
                 layer.contour = REGION_CONTOUR_PX
                 layer.opacity = 1.0
                 layer.visible = True
+            elif layer_type == "image" and hasattr(layer, "colorbar"):  # the map's colour bar, with its unit
+                layer.colorbar.visible = True
             QTimer.singleShot(0, self._add_next_layer)
             return
         result, source = self._pending_done
-        if source in self.viewer.layers:  # keep the raw stack selected for the next run
-            self.viewer.layers.selection.active = self.viewer.layers[source]
+        rate = [layer for layer in self.viewer.layers
+                if isinstance(layer.metadata.get(META_KEY), dict)
+                and layer.metadata[META_KEY].get("source_layer") == source and layer.metadata[META_KEY].get("map")
+                == "rate_bpm"]
+        if rate:  # hovering then reads the rate, not the raw intensity (the panel keeps its own choice of stack)
+            self.viewer.layers.selection.active = rate[-1]
         summary = result.summary()
         self.status.setText(
             f"Done in {time.perf_counter() - self._run_started:.1f} s: median rate "
