@@ -36,8 +36,8 @@ def write_maps(path, channels: dict[str, np.ndarray], *, pixel_size_um=None, lab
     root.attrs["ome"] = {
         "version": NGFF_VERSION,
         "multiscales": _multiscales("tempofield maps", axes, [1.0, ps, ps]),
-        "omero": {"channels": [{"label": n, "active": i == 0, "color": "FFFFFF",
-                                "window": _window(stack[i])} for i, n in enumerate(names)]},
+        "omero": {"channels": [{"label": n, "active": i == 0, "color": CHANNEL_COLOURS.get(n, "FFFFFF"),
+                                "window": _window(stack[i], n)} for i, n in enumerate(names)]},
     }
     root.attrs["tempofield"] = {"channels": names, "units": {n: (units or {}).get(n, "") for n in names}}
     _write_array(root, "0", stack, ["c", "y", "x"], chunks=(1,) + _plane_chunks(stack.shape[1:]))
@@ -56,12 +56,27 @@ def _plane_chunks(shape):
     return tuple(min(int(s), 1024) for s in shape)
 
 
-def _window(a):
+#: Display colours of the map channels for other OME-Zarr viewers (hex RGB), chosen so neighbours differ.
+CHANNEL_COLOURS = {"rate_bpm": "FFD400", "period_s": "00C8FF", "amplitude": "FF7F0E", "periodicity": "7FFF00",
+                   "coherence": "FFFFFF", "phase_rad": "FF00FF", "delay_s": "1F77FF", "peak_score": "BBBBBB",
+                   "mean_intensity": "FFFFFF", "detection": "FF4040", "loop_score_tiles": "9467BD"}
+
+#: Channels whose display window is fixed by their meaning, not by their values.
+FIXED_WINDOWS = {"phase_rad": (0.0, float(2 * np.pi)), "periodicity": (0.0, 1.0), "coherence": (0.0, 1.0),
+                 "detection": (0.0, 2.0)}
+
+
+def _window(a, name=""):
+    """The omero display window: the full range as min/max, and start/end from the 1st to 99th
+    percentile, so that two outlier pixels do not wash out the map (fixed for phase, 0-1 maps)."""
     finite = a[np.isfinite(a)]
     if finite.size == 0:
         return {"start": 0.0, "end": 1.0, "min": 0.0, "max": 1.0}
     lo, hi = float(finite.min()), float(finite.max())
-    return {"start": lo, "end": hi, "min": lo, "max": hi}
+    start, end = FIXED_WINDOWS.get(name) or (float(v) for v in np.percentile(finite, [1, 99]))
+    if not end > start:
+        start, end = lo, max(hi, lo + 1e-6)
+    return {"start": start, "end": end, "min": min(lo, start), "max": max(hi, end)}
 
 
 def _write_array(group, name, data, dims, chunks):
@@ -80,6 +95,12 @@ def read_maps(path) -> tuple[dict[str, np.ndarray], dict]:
         [c["label"] for c in attrs["ome"]["omero"]["channels"]]
     data = np.asarray(root["0"][...])
     return {n: data[i] for i, n in enumerate(names)}, attrs
+
+
+def read_label(path, name) -> np.ndarray:
+    """The label image ``labels/NAME`` of an image written by :func:`write_maps`, as int32."""
+    root = zarr.open_group(str(path), mode="r")
+    return np.asarray(root["labels"][name]["0"][...], np.int32)
 
 
 def create_stack(path, shape, dtype, *, frame_interval_s, pixel_size_um=None, chunk_yx=128):

@@ -30,6 +30,11 @@ MAP_UNITS = {"rate_bpm": "1/minute", "period_s": "second", "amplitude": "intensi
              "periodicity": "1", "coherence": "1", "phase_rad": "radian", "delay_s": "second",
              "regions": "label"}
 
+#: Units of the maps a run may add beside the public ones (``extra_maps``).
+EXTRA_UNITS = {"peak_score": "1", "mean_intensity": "intensity", "detection": "1",
+               "velocity_y_um_s": "micrometer/second", "velocity_x_um_s": "micrometer/second",
+               "velocity_y_px_s": "pixel/second", "velocity_x_px_s": "pixel/second", "loop_score_tiles": "1"}
+
 RUN_FILE = "run.json"
 MAPS_FILE = "maps.ome.zarr"
 REGIONS_FILE = "regions.csv"
@@ -136,10 +141,11 @@ class RhythmResult:
     def _write_into(self, folder: Path) -> None:
         from tempofield.io import omezarr
 
-        channels = {name: getattr(self, name) for name in MAP_NAMES}
+        # the regions are a label image only (another viewer must not show them as a grey channel)
+        channels = {name: getattr(self, name) for name in MAP_NAMES if name != "regions"}
         channels.update(self.extra_maps)
         omezarr.write_maps(folder / MAPS_FILE, channels, pixel_size_um=self.pixel_size_um,
-                           labels={"regions": self.regions}, units=MAP_UNITS)
+                           labels={"regions": self.regions}, units={**MAP_UNITS, **EXTRA_UNITS})
         table = self.region_table if self.region_table is not None else pd.DataFrame()
         in_rate_unit(table, self.rate_unit).to_csv(folder / REGIONS_FILE, index=False)
         beats = beats_table(self.references)
@@ -232,6 +238,8 @@ def load_result(path) -> RhythmResult:
         raise InputError(f"{str(folder)!r} is not a complete tempofield result folder (no valid {RUN_FILE}).")
     rec = json.loads((folder / RUN_FILE).read_text())
     channels, _ = omezarr.read_maps(folder / MAPS_FILE)
+    if "regions" not in channels:  # (results written before the regions became a label image only)
+        channels["regions"] = omezarr.read_label(folder / MAPS_FILE, "regions")
     table_path = folder / REGIONS_FILE
     try:
         table = pd.read_csv(table_path)
