@@ -300,3 +300,34 @@ def test_results_are_readable_by_default(panel, scene, qtbot):
         speed = layer.features.iloc[:, 0].to_numpy()
         assert layer.edge_contrast_limits[1] <= np.percentile(speed, 99) + 1e-6
     assert any("%" in text and text.startswith("Analysing:") for text in seen)
+
+
+def test_the_layer_units_and_axes_are_read(panel, scene):
+    """A layer scaled in ms and nm with axes labelled (y, x, t) is prefilled 0.04 s and 4 um with its time
+    axis found; a (C, T, Y, X) layer offers its channels; a 2-D image is listed as not analysable;
+    renaming the chosen layer keeps it and the typed frame interval survives adding a layer."""
+    viewer = panel.viewer
+    yxt = np.moveaxis(scene.frames[:, :24, :24], 0, -1)
+    viewer.add_image(yxt, name="yxt", scale=(4000.0, 4000.0, 40.0), units=("nm", "nm", "ms"),
+                     axis_labels=("y", "x", "t"))
+    panel.set_layer("yxt")
+    assert panel.frame_interval.value() == pytest.approx(0.04)
+    assert panel.pixel_size.value() == pytest.approx(4.0)
+    stack = panel.make_stack()
+    assert stack.shape == (scene.frames.shape[0], 24, 24)
+    np.testing.assert_array_equal(np.asarray(stack.data[:, 3, 5]), yxt[3, 5])
+    ctyx = np.stack([scene.frames[:, :16, :16]] * 3)
+    viewer.add_image(ctyx, name="ctyx", axis_labels=("c", "t", "y", "x"))
+    panel.set_layer("ctyx")
+    assert (panel.channel_spin.minimum(), panel.channel_spin.maximum()) == (0, 2) and panel.channel_spin.isEnabled()
+    viewer.add_image(scene.frames[0], name="one frame")
+    texts = [panel.layer_box.itemText(i) for i in range(panel.layer_box.count())]
+    flat = [t for t in texts if t.startswith("one frame")]
+    assert flat and "not analysable" in flat[0]
+    panel.set_layer("yxt")
+    panel.frame_interval.setValue(0.05)
+    viewer.layers["yxt"].name = "renamed"
+    assert panel.layer_box.currentText() == "renamed"
+    viewer.add_image(scene.frames[:, :8, :8], name="later")
+    assert panel.layer_box.currentText() == "renamed" and panel.frame_interval.value() == pytest.approx(0.05)
+    assert panel.make_stack().frame_interval_s == pytest.approx(0.05)

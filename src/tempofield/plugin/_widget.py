@@ -72,31 +72,89 @@ def analysis_job(stack, rate_range_bpm, cancel, options):
     return result
 
 
+#: Axis labels napari layers use for time and for channels (lower case).
+TIME_LABELS = ("t", "time", "frame", "frames")
+CHANNEL_LABELS = ("c", "ch", "channel", "channels")
+
+#: Time and length units to seconds and micrometres (what a layer's ``units`` may say).
+_TO_SECONDS = {"second": 1.0, "s": 1.0, "millisecond": 1e-3, "ms": 1e-3, "microsecond": 1e-6, "us": 1e-6,
+               "minute": 60.0, "min": 60.0, "hour": 3600.0, "h": 3600.0}
+_TO_UM = {"micrometer": 1.0, "micron": 1.0, "um": 1.0, "µm": 1.0, "nanometer": 1e-3, "nm": 1e-3,
+          "millimeter": 1e3, "mm": 1e3, "meter": 1e6, "m": 1e6, "centimeter": 1e4, "cm": 1e4}
+
+
+def _unit_name(unit) -> str:
+    text = str(unit or "").strip().lower()
+    return "" if text in ("pixel", "px", "dimensionless", "") else text
+
+
+def layer_axes(layer) -> str:
+    """The layer's axes as letters (T, C, Y, X, S for RGB samples), from its axis labels where they say.
+
+    The time axis is the one labelled t/time/frame, else the first; a channel
+    axis is the one labelled c/channel, else the axis left over in a 4-D layer;
+    the last two non-time axes are Y and X.
+    """
+    nd = layer.ndim
+    labels = [str(a).strip().lower() for a in getattr(layer, "axis_labels", ())] or [""] * nd
+    time = next((i for i, a in enumerate(labels) if a in TIME_LABELS), 0)
+    rest = [i for i in range(nd) if i != time]
+    letters = [""] * nd
+    letters[time] = "T"
+    spatial = rest[-2:]
+    for i, letter in zip(spatial, "YX"):
+        letters[i] = letter
+    for i in rest[:-2]:
+        letters[i] = "C"
+    out = "".join(letters)
+    return out + "S" if layer.rgb else out
+
+
+def _axis_physical(layer, axis: int, table: dict) -> float | None:
+    """The scale of one axis in the table's unit (seconds or micrometres), or None when it was never set."""
+    scale = float(layer.scale[axis])
+    if scale == 1.0:  # napari's default: never set, whatever unit the axis names
+        return None
+    units = getattr(layer, "units", None)
+    name = _unit_name(units[axis]) if units is not None and len(units) > axis else ""
+    return scale * table.get(name, 1.0)  # a scale without a known unit: taken as seconds / micrometres
+
+
 def stack_layer_frame_interval(layer) -> float | None:
-    """Frame interval of a layer from its metadata, or its time scale if that was ever set."""
+    """Frame interval of a layer, seconds: its metadata, else its time axis's scale in its unit (ms -> s)."""
     fi = layer.metadata.get("frame_interval_s")
     if fi:
         return float(fi)
-    s0 = float(layer.scale[0])
-    return s0 if s0 != 1.0 else None
+    return _axis_physical(layer, layer_axes(layer).index("T"), _TO_SECONDS)
 
 
 def stack_layer_pixel_size(layer) -> float | None:
-    """Pixel size of a layer from its metadata, or its x scale if that was ever set."""
+    """Pixel size of a layer, micrometres: its metadata, else its x axis's scale in its unit (nm -> µm)."""
     ps = layer.metadata.get("pixel_size_um")
     if ps:
         return float(ps)
-    sx = float(layer.scale[-1])
-    return sx if sx != 1.0 else None
+    return _axis_physical(layer, layer_axes(layer).index("X"), _TO_UM)
 
 
 def is_stack_layer(layer) -> bool:
-    """Image layers that can be analysed: (T, Y, X), (T, C, Y, X) or RGB (T, Y, X, S)."""
+    """Image layers that can be analysed: (T, Y, X), (T, C, Y, X) or RGB (T, Y, X, S), axes in any order
+    their labels say."""
+    return not_a_stack_reason(layer) is None
+
+
+def not_a_stack_reason(layer) -> str | None:
+    """Why an image layer cannot be analysed, or None when it can (results' own layers: 'a result')."""
     from napari.layers import Image
 
-    if not isinstance(layer, Image) or META_KEY in layer.metadata:
-        return False
-    return layer.ndim in (3, 4)
+    if not isinstance(layer, Image):
+        return "not an image"
+    if META_KEY in layer.metadata:
+        return "a result"
+    if layer.ndim < 3:
+        return "a single 2-D image: no time axis"
+    if layer.ndim > 4:
+        return f"{layer.ndim} axes: choose a channel or plane first"
+    return None
 
 
 class AnalysisPanel(QWidget):
@@ -118,6 +176,7 @@ class AnalysisPanel(QWidget):
         self._stop_reported = False
         self._pending: list[tuple] = []
         self._pending_done = None
+        self._chosen = None  # the stack layer chosen (the object: it keeps its place across renames)
 
         form = QFormLayout()
         self.layer_box = QComboBox()
@@ -222,24 +281,41 @@ class AnalysisPanel(QWidget):
         return w
 
     def _refresh_layers(self, event=None):
-        current = self.layer_box.currentText()
-        names = [layer.name for layer in self.viewer.layers if is_stack_layer(layer)]
+        """Keep the list current (added, removed, renamed, reordered layers) without touching the fields
+        while the chosen layer stays the same object; 2-D images are listed, greyed, with why."""
+        for layer in self.viewer.layers:  # a rename must refresh the list too
+            if not getattr(layer, "_tempofield_watched", False):
+                layer.events.name.connect(self._refresh_layers)
+                layer._tempofield_watched = True
+        chosen = self._chosen
+        stacks = [layer for layer in self.viewer.layers if is_stack_layer(layer)]
+        others = [(layer, not_a_stack_reason(layer)) for layer in self.viewer.layers
+                  if not is_stack_layer(layer) and not_a_stack_reason(layer) == "a single 2-D image: no time axis"]
         self.layer_box.blockSignals(True)
         self.layer_box.clear()
-        self.layer_box.addItems(names)
-        if current in names:
-            self.layer_box.setCurrentText(current)
+        self.layer_box.addItems([layer.name for layer in stacks])
+        for layer, why in others:
+            self.layer_box.addItem(f"{layer.name} (not analysable: {why})")
+            item = self.layer_box.model().item(self.layer_box.count() - 1)
+            item.setEnabled(False)
+        if chosen is not None and any(layer is chosen for layer in stacks):
+            self.layer_box.setCurrentText(chosen.name)
+        elif stacks:
+            self.layer_box.setCurrentIndex(0)
         self.layer_box.blockSignals(False)
-        if self.layer_box.currentText() != current:
+        now = self._layer(self.layer_box.currentText())
+        if now is not chosen:
             self._prefill_from_layer(self.layer_box.currentText())
 
     def _prefill_from_layer(self, name):
         layer = self._layer(name)
+        self._chosen = layer
         if layer is None:
             return
         self.frame_interval.setValue(stack_layer_frame_interval(layer) or 0.0)
         self.pixel_size.setValue(stack_layer_pixel_size(layer) or 0.0)
-        n_channels = layer.data.shape[1] if (layer.ndim == 4 and not layer.rgb) else 1
+        axes = layer_axes(layer)
+        n_channels = layer.data.shape[axes.index("C")] if "C" in axes else 1
         self.channel_spin.setRange(0, n_channels - 1)
         self.channel_spin.setEnabled(n_channels > 1)
 
@@ -305,12 +381,8 @@ class AnalysisPanel(QWidget):
                                 "frames in 'frame interval' (50 frames per second is 0.02 s).")
         ps = self.pixel_size.value() or None
         data = layer.data[0] if layer.multiscale else layer.data
-        if layer.rgb:
-            axes, channel = "TYXS", None
-        elif layer.ndim == 4:
-            axes, channel = "TCYX", self.channel_spin.value()
-        else:
-            axes, channel = "TYX", None
+        axes = layer_axes(layer)
+        channel = self.channel_spin.value() if "C" in axes else None
         return open_stack(data, frame_interval_s=fi, pixel_size_um=ps, axes=axes, channel=channel)
 
     # ----------------------------------------------------------------- running
