@@ -51,22 +51,14 @@ def pulse_shapes(seeds):
 
 
 def recordings():
-    import tempofield
-    from test_real_recordings import CASES, FRAME_INTERVAL_S, _rmssd, _sdnn, detector_beats, match_intervals, recording
-
-    from tempofield.scenes import synthetic
+    from test_real_recordings import CASES, _rmssd, _sdnn, analyse_case, match_intervals
 
     print("\nreal recorded pulses (HeartPy examples; NeuroKit2 beats; targets: rate 1 %, matched 90 %, "
           "MAE 40 ms, SDNN 25 %, RMSSD 35 %)")
     print(f"{'recording':14s} {'rate err %':>10s} {'matched':>9s} {'MAE ms':>7s} {'SDNN ours/theirs ms':>20s} "
           f"{'RMSSD ours/theirs ms':>21s}  method")
-    for name, (example, start, stop) in sorted(CASES.items()):
-        t, x = recording(example, start, stop)
-        truth = detector_beats(t, x)
-        scene = synthetic.waveform_scene(t, x, frame_interval_s=FRAME_INTERVAL_S, shape=(24, 24), radius_px=8.0,
-                                         amplitude=60.0, noise_sd=6.0, wave_speed_px_s=300.0, bleach_fraction=0.2,
-                                         rng=example + 1)
-        res = tempofield.analyze(tempofield.open_stack(scene.frames, frame_interval_s=FRAME_INTERVAL_S), (40, 200))
+    for name in sorted(CASES):
+        truth, scene, res = analyse_case(name)
         disc = scene.truth["regions"] > 0
         label = int(np.bincount(res.regions[disc]).argmax())
         ref = res.references[label]

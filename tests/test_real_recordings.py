@@ -104,16 +104,21 @@ CASES = {
 }
 
 
-@pytest.fixture(scope="module", params=sorted(CASES))
-def analysed(request):
-    example, start, stop = CASES[request.param]
+def analyse_case(name):
+    """One case of :data:`CASES`: the detector's beats, the filmed scene and tempofield's result."""
+    example, start, stop = CASES[name]
     t, x = recording(example, start, stop)
     truth = detector_beats(t, x)
     scene = synthetic.waveform_scene(t, x, frame_interval_s=FRAME_INTERVAL_S, shape=(24, 24), radius_px=8.0,
                                      amplitude=60.0, noise_sd=6.0, wave_speed_px_s=300.0, bleach_fraction=0.2,
                                      rng=example + 1)
     res = tempofield.analyze(tempofield.open_stack(scene.frames, frame_interval_s=FRAME_INTERVAL_S), (40, 200))
-    return request.param, truth, scene, res
+    return truth, scene, res
+
+
+@pytest.fixture(scope="module", params=sorted(CASES))
+def analysed(request):
+    return (request.param, *analyse_case(request.param))
 
 
 def test_beats_match_the_independent_detector(analysed):

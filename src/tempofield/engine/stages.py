@@ -154,6 +154,7 @@ class Run:
     coherence: np.ndarray | None = None
     phase_rad: np.ndarray | None = None
     lock_amplitude: np.ndarray | None = None
+    lock_score: np.ndarray | None = None
     # ---- locked_detection
     detection: np.ndarray | None = None
     # ---- activation
@@ -465,7 +466,8 @@ def lockin(run: Run) -> Iterator[Progress]:
     Writes: ``candidates`` (each pixel's nearest region with a reference),
     ``thetas`` (each reference's phase on every frame, the smoothed and the
     raw one), ``phase_rad`` (the lag behind the candidate's reference, not
-    yet re-based), ``coherence``, ``lock_amplitude``, ``phase_source``; the
+    yet re-based), ``coherence``, ``lock_amplitude``, ``lock_score`` (the
+    matched test's |z|^2 / noise power), ``phase_source``; the
     phase and delay maps are NaN when there is no reference.
     """
     stack = run.stack
@@ -529,6 +531,8 @@ def lockin(run: Run) -> Iterator[Progress]:
         run.phase_rad[sl] = r["phase"]
         run.coherence[sl] = r["coherence"]
         run.lock_amplitude[sl] = r["lock_amplitude"]
+    # the matched test's statistic: used by the locked detection and, as delay uncertainty, by propagation
+    run.lock_score = phase_mod.locked_score(run.lock_amplitude, run.maps["noise_power"], t)
     run.timings["phase_pass_s"] = time.perf_counter() - t_phase
 
 
@@ -543,7 +547,7 @@ def locked_detection(run: Run) -> Iterator[Progress]:
     rate of the spectral detection (no search over rates, so no larger
     threshold is needed).
 
-    Reads: ``labels``, ``candidates``, ``lock_amplitude``, ``maps``,
+    Reads: ``labels``, ``candidates``, ``lock_amplitude``, ``lock_score``, ``maps``,
     ``references``. Writes: ``detection`` ((Y, X) uint8: 0 none,
     1 spectral, 2 reference-locked), ``labels`` (grown), and, for the
     joined pixels, ``maps["amplitude"]`` (the lock-in amplitude; their rate
@@ -554,7 +558,7 @@ def locked_detection(run: Run) -> Iterator[Progress]:
     run.detection = detection
     if not run.references or not run.opts["locked_detection"]:
         return
-    score = phase_mod.locked_score(run.lock_amplitude, m["noise_power"], run.stack.n_frames)
+    score = run.lock_score
     if run.frozen is not None:
         # A lossy inter-frame codec spreads a beat into the blocks around it, and its bit budget makes
         # still picture flicker with the beat: a lock-in would find both. Not used there.
@@ -613,7 +617,7 @@ def activation(run: Run) -> Iterator[Progress]:
 def propagation(run: Run) -> Iterator[Progress]:
     """Conduction velocity field and each region's plane-wave or point-source fit, from the delays.
 
-    Reads: ``delay_s``, ``labels``, ``references``, ``lock_amplitude`` and
+    Reads: ``delay_s``, ``labels``, ``references``, ``lock_score`` and
     ``maps["noise_power"]`` (each delay's uncertainty). Writes:
     ``propagation`` ({label: fit values}), ``velocity`` ((Y, X, 2) in µm/s,
     or px/s without a pixel size), a warning for each region without
@@ -627,8 +631,7 @@ def propagation(run: Run) -> Iterator[Progress]:
     period_map = np.full(run.labels.shape, np.nan)
     for label, period in periods.items():
         period_map[run.labels == label] = period
-    score = phase_mod.locked_score(run.lock_amplitude, run.maps["noise_power"], run.stack.n_frames)
-    delay_sd = propagation_mod.delay_uncertainty(score, period_map)
+    delay_sd = propagation_mod.delay_uncertainty(run.lock_score, period_map)
     run.propagation, run.velocity = propagation_mod.region_propagation(
         run.delay_s, run.labels, periods, run.stack.pixel_size_um, run.stack.frame_interval_s,
         delay_sd_s=delay_sd, pooling_radius=run.halo)
