@@ -617,8 +617,8 @@ def activation(run: Run) -> Iterator[Progress]:
 def propagation(run: Run) -> Iterator[Progress]:
     """Conduction velocity field and each region's plane-wave or point-source fit, from the delays.
 
-    Reads: ``delay_s``, ``labels``, ``references``, ``lock_score`` and
-    ``maps["noise_power"]`` (each delay's uncertainty). Writes:
+    Reads: ``delay_s``, ``labels``, ``references``, ``lock_score`` (each
+    delay's uncertainty). Writes:
     ``propagation`` ({label: fit values}), ``velocity`` ((Y, X, 2) in µm/s,
     or px/s without a pixel size), a warning for each region without
     measurable propagation.
