@@ -108,8 +108,8 @@ def main(argv=None) -> int:
     viewer.screenshot(str(path), canvas_only=False, flash=False)
     paths.append(path)
 
-    rate = viewer.layers[f"{raw.name} · rate (bpm)"]
-    phase = viewer.layers[f"{raw.name} · phase (rad)"]
+    rate = viewer.layers[f"rate (bpm) · {raw.name}"]
+    phase = viewer.layers[f"phase (rad) · {raw.name}"]
     rate.visible, phase.visible = False, True
     phase.opacity = 0.85
     for _ in range(10):

@@ -50,14 +50,14 @@ def test_writer_then_reader_round_trip(result, tmp_path):
     reader = _reader.get_result_reader(str(out))
     assert reader is not None and _reader.get_stack_reader(str(out)) is None
     read = {attrs["name"]: (data, attrs, kind) for data, attrs, kind in reader(str(out))}
-    rate = read["saved · rate (bpm)"]
+    rate = read["rate (bpm) · saved"]
     np.testing.assert_array_equal(rate[0], result.rate_bpm)
     assert rate[1]["colormap"] == "viridis" and rate[1]["scale"] == (4.0, 4.0)
     assert rate[1]["metadata"]["tempofield"]["unit"] == "1/minute"
-    phase = read["saved · phase (rad)"]
+    phase = read["phase (rad) · saved"]
     assert phase[1]["colormap"] == "twilight" and phase[1]["contrast_limits"] == (0.0, 2 * math.pi)
     assert phase[1]["metadata"]["tempofield"]["unit"] == "radian"
-    assert read["saved · regions"][2] == "labels"
+    assert read["regions · saved"][2] == "labels"
     # read layers can be written again, and carry the whole result (tables, references)
     again = result_from_layers(_as_writer_input(read.values()))
     assert len(again.region_table) == len(result.region_table)
@@ -116,8 +116,9 @@ def test_save_and_open_through_the_viewer(make_napari_viewer, result, tmp_path):
     out = tmp_path / "from_viewer"
     saved = viewer.layers.save(str(out), selected=True, plugin="tempofield")
     assert saved == [str(out)] and tempofield.outputs.result.is_complete(out)
+    assert (out / "report.png").stat().st_size > 10_000  # the same report as `tempofield analyze` writes
     viewer.open(str(out), plugin="tempofield")
-    rate = viewer.layers["from_viewer · rate (bpm)"]
+    rate = viewer.layers["rate (bpm) · from_viewer"]
     np.testing.assert_array_equal(rate.data, result.rate_bpm)
     assert rate.colormap.name == "viridis"
     np.testing.assert_allclose(rate.scale, (4.0, 4.0))

@@ -45,7 +45,7 @@ def test_overlays_change_the_picture_inside_the_tissue(make_napari_viewer, qtbot
     assert plain[tissue].std() > 1.0  # the raw stack itself is drawn
 
     for title in ("rate (bpm)", "phase (rad)"):
-        layer = viewer.layers[f"{raw.name} · {title}"]
+        layer = viewer.layers[f"{title} · {raw.name}"]
         if not np.isfinite(layer.data).any():  # no phase from the engine: draw a known one instead
             layer.data = np.where(scene.truth["regions"] > 0,
                                   np.linspace(0, 2 * np.pi, layer.data.shape[1])[None, :], np.nan).astype(np.float32)

@@ -29,7 +29,7 @@ def test_noise_sample_has_no_rhythm_truth():
     """The noise sample is synthetic.noise_scene with the samples' seed; its truth says there is no
     rhythm anywhere (no rate, no region), and the analysis of the sample finds no region."""
     (data, attrs, _), = _sample_data.noise()
-    ref = synthetic.noise_scene((200, 64, 64), rng=samples.SEED)
+    ref = synthetic.noise_scene((300, 64, 64), rng=samples.SEED)
     np.testing.assert_array_equal(data, ref.frames)
     meta = attrs["metadata"]
     assert meta["frame_interval_s"] == ref.frame_interval_s

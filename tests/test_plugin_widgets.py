@@ -92,13 +92,13 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
     titles = ["rate (bpm)", "periodicity", "phase (rad)", "activation delay (s)", "regions"]
     if "velocity_x_um_s" in expected.extra_maps:  # once the engine measures conduction velocity
         titles.append("conduction velocity")
-    assert sorted(layers) == sorted(f"well sheet · {t}" for t in titles)
-    rate, phase = layers["well sheet · rate (bpm)"], layers["well sheet · phase (rad)"]
+    assert sorted(layers) == sorted(f"{t} · well sheet" for t in titles)
+    rate, phase = layers["rate (bpm) · well sheet"], layers["phase (rad) · well sheet"]
     np.testing.assert_array_equal(rate.data, expected.rate_bpm)
     np.testing.assert_array_equal(phase.data, expected.phase_rad)
-    np.testing.assert_array_equal(layers["well sheet · activation delay (s)"].data, expected.delay_s)
-    np.testing.assert_array_equal(layers["well sheet · periodicity"].data, expected.periodicity)
-    np.testing.assert_array_equal(layers["well sheet · regions"].data, expected.regions)
+    np.testing.assert_array_equal(layers["activation delay (s) · well sheet"].data, expected.delay_s)
+    np.testing.assert_array_equal(layers["periodicity · well sheet"].data, expected.periodicity)
+    np.testing.assert_array_equal(layers["regions · well sheet"].data, expected.regions)
     assert np.nanmedian(rate.data) == pytest.approx(72.0, abs=1.0)
     for layer in layers.values():
         np.testing.assert_allclose(layer.scale, raw.scale[-2:])
@@ -111,7 +111,7 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
     assert phase.contrast_limits == pytest.approx([0.0, 2 * math.pi])
     finite = expected.rate_bpm[np.isfinite(expected.rate_bpm)]
     assert rate.contrast_limits == pytest.approx(list(np.percentile(finite, [1, 99])), rel=1e-5)
-    assert type(layers["well sheet · regions"]).__name__ == "Labels"
+    assert type(layers["regions · well sheet"]).__name__ == "Labels"
     n_layers = len(viewer.layers)
     run_panel(qtbot, panel)
     assert len(viewer.layers) == n_layers  # replaced, not piled up
@@ -186,8 +186,8 @@ def test_velocity_field_becomes_a_vectors_layer(panel, scene, qtbot):
         extra_maps={"velocity_y_um_s": vy, "velocity_x_um_s": vx}, version="test")
     place = {"scale": tuple(raw.scale[-2:]), "translate": tuple(raw.translate[-2:]), "units": raw.units[-2:]}
     with qtbot.waitSignal(panel.analysis_finished):
-        panel._on_result(result, raw.name, place)
-    vec = panel.viewer.layers["well sheet · conduction velocity"]
+        panel._on_result(result, None, raw.name, place)
+    vec = panel.viewer.layers["conduction velocity · well sheet"]
     assert type(vec).__name__ == "Vectors"
     np.testing.assert_allclose(vec.scale, raw.scale[-2:])
     np.testing.assert_allclose(vec.features["speed_um_s"], 5000.0)
@@ -197,8 +197,8 @@ def test_velocity_field_becomes_a_vectors_layer(panel, scene, qtbot):
     # a result without a velocity field has no vectors layer; rerun removes the old one
     result.extra_maps = {}
     with qtbot.waitSignal(panel.analysis_finished):
-        panel._on_result(result, raw.name, place)
-    assert "well sheet · conduction velocity" not in panel.viewer.layers
+        panel._on_result(result, None, raw.name, place)
+    assert "conduction velocity · well sheet" not in panel.viewer.layers
 
 
 def test_channel_of_a_tcyx_layer(panel, scene, qtbot):
@@ -211,7 +211,7 @@ def test_channel_of_a_tcyx_layer(panel, scene, qtbot):
     assert panel.channel_spin.isEnabled() and panel.channel_spin.maximum() == 1
     panel.channel_spin.setValue(1)
     run_panel(qtbot, panel)
-    rate = panel.viewer.layers["two channels · rate (bpm)"]
+    rate = panel.viewer.layers["rate (bpm) · two channels"]
     expected = tempofield.analyze(tempofield.open_stack(tcyx, frame_interval_s=fi, axes="TCYX", channel=1),
                                 panel.rate_range_bpm())
     np.testing.assert_array_equal(rate.data, expected.rate_bpm)
@@ -227,7 +227,7 @@ def test_inspector_shows_a_clicked_region_and_exports(panel, scene, qtbot, tmp_p
     inspector = RegionInspector(viewer)
     viewer.window.add_dock_widget(inspector, name="region inspector")
     run_panel(qtbot, panel)
-    regions = viewer.layers["well sheet · regions"]
+    regions = viewer.layers["regions · well sheet"]
     assert inspector.result_box.currentText() == regions.name
     # a hand-made reference and table row (the topology/regions work fills these in later)
     result = regions.metadata["tempofield_result"]
@@ -283,18 +283,18 @@ def test_results_are_readable_by_default(panel, scene, qtbot):
     run_panel(qtbot, panel)
     timer.stop()
     layers = {layer.name: layer for layer in result_layers(viewer, "well sheet")}
-    rate = layers["well sheet · rate (bpm)"]
+    rate = layers["rate (bpm) · well sheet"]
     assert viewer.layers.selection.active is rate
     for name, layer in layers.items():
         if layer._type_string == "image":
             assert layer.colorbar.visible, name
     lightness = np.asarray(rate.colormap.colors)[:, :3] @ [0.299, 0.587, 0.114]
     assert abs(lightness[-1] - lightness[0]) > 0.5
-    delay = layers["well sheet · activation delay (s)"]
+    delay = layers["activation delay (s) · well sheet"]
     finite = delay.data[np.isfinite(delay.data)]
     assert delay.contrast_limits == pytest.approx(list(np.percentile(finite, [1, 99])), rel=1e-5)
     assert delay.contrast_limits[1] < np.nanmax(panel.last_result.period_s)
-    vectors = [layer for name, layer in layers.items() if name.endswith("conduction velocity")]
+    vectors = [layer for name, layer in layers.items() if name.startswith("conduction velocity")]
     for layer in vectors:
         assert not layer.visible
         speed = layer.features.iloc[:, 0].to_numpy()

@@ -209,25 +209,33 @@ def report_writers(result, stack=None) -> dict:
     return {REPORT_FILE: lambda folder: render_report(result, Path(folder) / REPORT_FILE, stack)}
 
 
-def preview_writer(result, stack, *, alpha: float = 10.0) -> dict:
-    """Writer of ``preview_magnified.tif``: the first frames with the main rhythm's band amplified.
+def magnified_preview(result, stack, *, alpha: float = 10.0) -> np.ndarray | None:
+    """The first frames with the main rhythm's band amplified, or None when no region has a rhythm.
 
     The band is the largest region's mean rate +-20 %. Only the preview's frames
     are read (at most ``PREVIEW_MAX_FRAMES``), so memory stays small.
     """
     from tempofield.kernels.magnify import magnify
 
+    if not result.references:
+        return None
+    sizes = {lab: int((result.regions == lab).sum()) for lab in result.references}
+    ref = result.references[max(sizes, key=sizes.get)]
+    f = ref.rate_mean_bpm / 60.0
+    n = min(stack.n_frames, PREVIEW_MAX_FRAMES)
+    frames = np.asarray(stack.data[:n].compute(), np.float32)
+    return magnify(frames, stack.frame_interval_s, (0.8 * f, 1.2 * f), alpha=alpha)
+
+
+def preview_writer(result, stack, *, alpha: float = 10.0) -> dict:
+    """Writer of ``preview_magnified.tif`` (see :func:`magnified_preview`); nothing without a rhythm."""
+
     def write(folder):
         import tifffile
 
-        if not result.references:
+        out = magnified_preview(result, stack, alpha=alpha)
+        if out is None:
             return
-        sizes = {lab: int((result.regions == lab).sum()) for lab in result.references}
-        ref = result.references[max(sizes, key=sizes.get)]
-        f = ref.rate_mean_bpm / 60.0
-        n = min(stack.n_frames, PREVIEW_MAX_FRAMES)
-        frames = np.asarray(stack.data[:n].compute(), np.float32)
-        out = magnify(frames, stack.frame_interval_s, (0.8 * f, 1.2 * f), alpha=alpha)
         tifffile.imwrite(Path(folder) / PREVIEW_FILE, out, imagej=True,
                          metadata={"axes": "TYX", "finterval": stack.frame_interval_s})
 

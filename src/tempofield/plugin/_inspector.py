@@ -5,7 +5,11 @@ cursor) or with the spin box. The panel shows, in matplotlib figures: the
 region's mean trace with its beats, the spectrum of that trace with the peak
 the engine picks in the band, the H1 persistence diagram of the region's
 rhythm reference, and its phase theta(t) with the instantaneous rate; below
-them the region's row of the region table. Both can be exported (CSV, PNG).
+them the region's row of the region table. The row, the figures and the traces
+(the mean trace with theta(t) and the rate on every frame, and the beats) can
+be exported (CSV, PNG). The region number can only name a region that exists
+in the chosen result; a rerun that updates the regions layer in place updates
+the inspector too.
 The mean trace and spectrum come from :mod:`._inspect` (glue over the
 engine's kernels) in a worker thread, so a large lazy stack does not freeze
 the viewer.
@@ -16,6 +20,7 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
 from matplotlib.figure import Figure
@@ -38,6 +43,7 @@ from qtpy.QtWidgets import (
 )
 
 from tempofield.engine.options import OPTION_BY_NAME
+from tempofield.kernels.phase import theta_on_frames
 
 from . import _inspect
 from ._layers import META_KEY, RESULT_KEY
@@ -47,7 +53,7 @@ FIGURES = ("trace", "spectrum", "persistence", "phase")
 _REGION_COLUMNS = ("region", "label", "region_label")
 
 
-@thread_worker(start_thread=False)
+@thread_worker(start_thread=False, ignore_errors=True)  # told in the hint line, never a crash
 def region_job(frames, regions, label, frame_interval_s, rate_range_bpm, options):
     """Worker: the region's mean trace and spectrum (None, None when there is no raw stack)."""
     if frames is None:
@@ -82,7 +88,8 @@ class RegionInspector(QWidget):
         self.result_box.setToolTip("The regions layer of a tempofield result.")
         form.addRow("result", self.result_box)
         self.region_spin = QSpinBox()
-        self.region_spin.setRange(0, 2**31 - 1)
+        self.region_spin.setRange(0, 0)  # bounded by the chosen result's labels (see _set_bounds)
+        self.region_spin.setSpecialValueText("none")
         self.region_spin.setToolTip("Region label; or click a region on the regions layer.")
         form.addRow("region", self.region_spin)
         self.hint = QLabel("Click a region on the regions layer, or choose its label.")
@@ -98,12 +105,15 @@ class RegionInspector(QWidget):
         self.table = QTableWidget(0, 2)
         self.table.setHorizontalHeaderLabels(["column", "value"])
         self.table.verticalHeader().setVisible(False)
-        self.table.setMaximumHeight(160)
+        self.table.horizontalHeader().setStretchLastSection(True)
+        self.table.setMinimumHeight(12 * self.table.verticalHeader().defaultSectionSize())  # a dozen rows at once
 
         buttons = QHBoxLayout()
         self.export_table_button = QPushButton("Export row (CSV)")
+        self.export_traces_button = QPushButton("Export traces (CSV)")
         self.export_figures_button = QPushButton("Export figures (PNG)")
         buttons.addWidget(self.export_table_button)
+        buttons.addWidget(self.export_traces_button)
         buttons.addWidget(self.export_figures_button)
 
         outer = QVBoxLayout(self)
@@ -117,6 +127,7 @@ class RegionInspector(QWidget):
         self.result_box.currentTextChanged.connect(lambda _t: self._result_changed())
         self.export_table_button.clicked.connect(lambda: self.export_table())
         self.export_figures_button.clicked.connect(lambda: self.export_figures())
+        self.export_traces_button.clicked.connect(lambda: self.export_traces())
         events = self.viewer.layers.events
         for ev in (events.inserted, events.removed):
             ev.connect(self._refresh_results)
@@ -133,6 +144,11 @@ class RegionInspector(QWidget):
 
     def _refresh_results(self, event=None):
         current = self.result_box.currentText()
+        for layer in self._regions_layers():  # a rerun updates the layer in place; so does a rename
+            if not getattr(layer, "_tempofield_inspected", False):
+                layer.events.data.connect(lambda _e: self._result_changed())
+                layer.events.name.connect(self._refresh_results)
+                layer._tempofield_inspected = True
         names = [layer.name for layer in self._regions_layers()]
         self.result_box.blockSignals(True)
         self.result_box.clear()
@@ -147,8 +163,26 @@ class RegionInspector(QWidget):
 
     def _result_changed(self):
         self.current = None
+        self._set_bounds()
         if self.region_spin.value() > 0:
             self.show_region()
+
+    def labels(self) -> list[int]:
+        """The region labels of the chosen result (ascending)."""
+        layer = self._regions_layer()
+        if layer is None:
+            return []
+        return [int(v) for v in np.unique(np.asarray(layer.data)) if v > 0]
+
+    def _set_bounds(self):
+        """The spin box spans the chosen result's labels only; a label that is gone is not kept."""
+        labels = self.labels()
+        self.region_spin.blockSignals(True)
+        self.region_spin.setRange(0, max(labels, default=0))
+        self.region_spin.blockSignals(False)
+        if not labels:
+            self._clear("This result has no beating region." if self._regions_layer() is not None
+                        else "Run an analysis, then pick a region.")
 
     def _regions_layer(self):
         name = self.result_box.currentText()
@@ -166,7 +200,10 @@ class RegionInspector(QWidget):
             self.select_region(int(value))
 
     def select_region(self, label: int) -> None:
-        """Show region ``label`` of the chosen result."""
+        """Show region ``label`` of the chosen result (one that does not exist clears the figures and says so)."""
+        if label not in self.labels():
+            self._clear(self._missing_text(label))
+            return
         if self.region_spin.value() == label:
             self.show_region()
         else:
@@ -178,6 +215,9 @@ class RegionInspector(QWidget):
         layer = self._regions_layer()
         label = self.region_spin.value()
         if layer is None or label <= 0:
+            return
+        if label not in self.labels():  # between two labels (e.g. 1, 2, 5: 3 and 4 do not exist)
+            self._clear(self._missing_text(label))
             return
         result = layer.metadata[RESULT_KEY]
         info = layer.metadata.get(META_KEY, {})
@@ -191,7 +231,7 @@ class RegionInspector(QWidget):
         self.hint.setText(f"Region {label}: computing its mean trace...")
         worker = region_job(raw, regions, label, result.frame_interval_s, band, options)
         worker.returned.connect(lambda out, lname=layer.name: self._draw(lname, result, *out))
-        worker.errored.connect(lambda exc: self.hint.setText(f"Region {label}: {exc}"))
+        worker.errored.connect(lambda exc: self._clear(f"Region {label}: {exc}"))
         worker.finished.connect(lambda w=worker: self._worker_done(w))
         self.worker = worker
         worker.start()
@@ -211,7 +251,24 @@ class RegionInspector(QWidget):
             data = data[:, channel or 0]
         return data if data.ndim == 3 else None
 
+    def _missing_text(self, label):
+        labels = self.labels()
+        listed = ", ".join(str(v) for v in labels[:12]) + (", ..." if len(labels) > 12 else "")
+        return (f"Region {label} does not exist in this result; its regions are {listed}." if labels
+                else "This result has no beating region.")
+
     # ----------------------------------------------------------------- drawing
+    def _clear(self, text):
+        """Nothing shown: empty figures and table, and why (so an old region is never left on screen)."""
+        if self.worker is not None:
+            self.worker.quit()
+            self.worker = None
+        self.current = None
+        self._shown_data = {}
+        self.table.setRowCount(0)
+        self.hint.setText(text)
+        self._draw_empty(text)
+
     def _draw_empty(self, text):
         for name, fig in self.figures.items():
             fig.clear()
@@ -303,7 +360,7 @@ class RegionInspector(QWidget):
             self.table.setItem(i, 1, QTableWidgetItem(f"{v:.4g}" if isinstance(v, float) else str(v)))
         self.table.resizeColumnsToContents()
         self.current = (layer_name, label)
-        self._shown_data = {"row": row}
+        self._shown_data = {"row": row, "trace": trace, "ref": ref, "dt": dt}
         note = "" if self._table_row(result, label) is not None else " (the region table has no row for it yet)"
         self.hint.setText(f"Region {label} of {layer_name!r}{note}.")
         self.region_shown.emit(label)
@@ -327,9 +384,9 @@ class RegionInspector(QWidget):
         if spectrum is not None:
             row["mean_trace_peak_rate_bpm"] = spectrum["peak_rate_bpm"]
             row["mean_trace_peak_score"] = spectrum["peak_score"]
-        if ref is not None:
-            row["loop_score"] = float(ref.score)
-            row["n_beats"] = len(ref.beat_times_s)
+        if ref is not None:  # the same names as the region table's columns
+            row.setdefault("loop_score", float(ref.score))
+            row.setdefault("beats", len(ref.beat_times_s))
         return row
 
     # ----------------------------------------------------------------- export
@@ -356,6 +413,41 @@ class RegionInspector(QWidget):
         path = folder / f"{self._stem()}.csv"
         pd.DataFrame([self._shown_data["row"]]).to_csv(path, index=False)
         return path
+
+    def export_traces(self, folder=None) -> list[Path]:
+        """Write the shown region's traces as two CSV files into ``folder`` (asked for when None).
+
+        ``<stem>_trace.csv``: one row per frame with ``time_s``, ``mean_signal``
+        (the region's mean raw value; empty without the raw stack),
+        ``theta_rad`` and ``rate_bpm`` (the rhythm reference on that frame;
+        beyond the span a sliding-window reference covers, its phase is
+        extended with the nearest cycle's rate and its rate held, as the
+        engine's lock-in does). ``<stem>_beats.csv``: ``beat``,
+        ``time_s`` and ``interval_s`` (from the previous beat).
+        """
+        if self.current is None:
+            return []
+        folder = self._folder(folder)
+        if folder is None:
+            return []
+        trace, ref, dt = self._shown_data["trace"], self._shown_data["ref"], self._shown_data["dt"]
+        n = len(trace) if trace is not None else (int(np.ceil(ref.time_s[-1] / dt)) + 1 if ref is not None
+                                                   and len(ref.time_s) else 0)
+        t = np.arange(n) * dt
+        frames = pd.DataFrame({"time_s": t,
+                               "mean_signal": np.asarray(trace, float) if trace is not None else np.nan})
+        if ref is not None and len(ref.time_s):  # on every frame, as the engine's lock-in uses it
+            frames["theta_rad"] = np.mod(theta_on_frames(ref.time_s, ref.theta_rad, t), 2 * np.pi)
+            frames["rate_bpm"] = np.interp(t, ref.time_s, ref.inst_rate_bpm)
+        else:
+            frames["theta_rad"] = frames["rate_bpm"] = np.nan
+        beat_times = np.asarray(ref.beat_times_s if ref is not None else [], float)
+        beats = pd.DataFrame({"beat": np.arange(1, beat_times.size + 1), "time_s": beat_times,
+                              "interval_s": np.r_[np.nan, np.diff(beat_times)] if beat_times.size else []})
+        paths = [folder / f"{self._stem()}_trace.csv", folder / f"{self._stem()}_beats.csv"]
+        frames.to_csv(paths[0], index=False)
+        beats.to_csv(paths[1], index=False)
+        return paths
 
     def export_figures(self, folder=None) -> list[Path]:
         """Write the four figures as PNG into ``folder`` (asked for when None)."""

@@ -61,9 +61,23 @@ REGIONS_TITLE = "regions"
 VELOCITY_TITLE = "conduction velocity"
 
 
+#: Longest part of a source's name kept in a layer name (its end: what tells stacks apart).
+SOURCE_CHARS = 28
+LOOP_TILES_TITLE = "loop score (16 px tiles)"
+
+
+def short_source(source: str) -> str:
+    """The end of a long source name (``"…_A03_run2.tif"``): napari's layer list
+    cuts long names in the middle, which hid the part that tells two stacks apart."""
+    return source if len(source) <= SOURCE_CHARS else "…" + source[-(SOURCE_CHARS - 1):]
+
+
 def layer_name(source: str, title: str) -> str:
-    """The name of a result layer: the source it came from and what it shows."""
-    return f"{source} · {title}"
+    """The name of a result layer: what it shows, then (the end of) the source it came from.
+
+    The full source name stays in the layer's metadata (``source_layer``).
+    """
+    return f"{title} · {short_source(source)}"
 
 
 def contrast_limits(values: np.ndarray, rule: str, period_s: np.ndarray | None = None) -> tuple[float, float]:
@@ -131,6 +145,14 @@ def result_layer_data(result: RhythmResult, source: str, *, scale=None, translat
             "contrast_limits": contrast_limits(data, style.limits, result.period_s),
             "visible": style.visible, "opacity": 0.75, "blending": "translucent",
             "metadata": provenance(result, source, name, run_id, **extra_meta), **spatial}, "image"))
+    tiles = (result.extra_maps or {}).get("loop_score_tiles")
+    if tiles is not None:  # the optional tile loop-score map (option tile_loop_map)
+        data = np.asarray(tiles, np.float32)
+        out.append((data, {
+            "name": layer_name(source, LOOP_TILES_TITLE), "colormap": "magma", "contrast_limits": (0.0, 1.0),
+            "visible": False, "opacity": 0.75, "blending": "translucent",
+            "metadata": provenance(result, source, "loop_score_tiles", run_id, unit="", **extra_meta),
+            **spatial}, "image"))
     out.append((np.asarray(result.regions, np.int32), {
         "name": layer_name(source, REGIONS_TITLE), "opacity": 0.6, "visible": False,
         "metadata": provenance(result, source, "regions", run_id, **extra_meta), **spatial}, "labels"))

@@ -32,5 +32,9 @@ def plane_wave():
 
 
 def noise():
-    """Camera noise with bleaching and flickering debris: no rhythm anywhere."""
-    return scene_layer_data(synthetic.noise_scene((200, 64, 64), rng=samples.SEED), "noise only")
+    """Camera noise with bleaching and flickering debris: no rhythm anywhere.
+
+    12 s at 25 frames per second, so the default rate band (its slowest rate
+    needs 9 s for three cycles) can be searched and found empty.
+    """
+    return scene_layer_data(synthetic.noise_scene((300, 64, 64), rng=samples.SEED), "noise only")

@@ -6,8 +6,11 @@ table, never from copies of it), then drives :func:`tempofield.engine.run.iter_a
 in a generator ``thread_worker``: every tile the engine finishes is one yield,
 one tick of napari's progress bar, and one point where Cancel takes effect.
 Result layers are added on the main thread when the worker returns; a rerun
-replaces the previous result layers of the same source layer, and a cancelled
-run adds nothing.
+of the same source layer updates its earlier result layers in place (same
+layer objects, new data, the user's display choices kept), and a cancelled run
+adds nothing. An error is told once: in the panel's status line and as one
+notification (with a traceback only for a fault of the program, never for a
+problem with the input).
 """
 
 from __future__ import annotations
@@ -18,6 +21,7 @@ import time
 
 from napari.qt.threading import thread_worker
 from napari.utils import progress
+from napari.utils.notifications import notification_manager, show_error, show_warning
 from napari.viewer import Viewer
 from qtpy.QtCore import QTimer, Signal
 from qtpy.QtWidgets import (
@@ -42,8 +46,9 @@ from tempofield.engine import presets
 from tempofield.engine import run as engine
 from tempofield.engine.options import OPTIONS, validate_options, validate_rate_range
 from tempofield.errors import CancelledError, TempofieldError
+from tempofield.outputs.report import magnified_preview
 
-from ._layers import META_KEY, REGION_CONTOUR_PX, result_layer_data
+from ._layers import META_KEY, REGION_CONTOUR_PX, layer_name, result_layer_data
 
 #: Options shown at once; the others sit under "more options".
 PRIMARY_OPTIONS = ("pooling_radius_px",)
@@ -56,6 +61,27 @@ COMBO_OPTIONS = ("specimen",)
 #: ``__main__`` guard (a second viewer, and a run that never ends).
 GUI_DEFAULTS: dict = {}
 CUSTOM_BAND = "custom band"
+#: Field labels of the options, in words (the engine's option names are for code and the command line).
+OPTION_LABELS = {
+    "pooling_radius_px": "smoothing radius (px)",
+    "false_alarm": "false alarms per pixel",
+    "trend_cutoff_fraction": "slow-trend cut-off (x lowest rate)",
+    "memory_budget_mb": "working memory (MB)",
+    "min_cycles": "fewest cycles in the record",
+    "gram_max_pixels": "pixels per region for its beat timing",
+    "n_landmarks": "moments compared per region",
+    "max_frames_topology": "frames used to find the cycle",
+    "min_area_px": "smallest region (px)",
+    "locked_detection": "add pixels that follow a region's rhythm",
+    "maps_only": "spectral maps only (fast)",
+    "specimen": "specimen",
+    "rate_unit": "rate unit (bpm or Hz)",
+    "magnified_preview": "show a magnified preview",
+    "worker_processes": "helper processes",
+    "phase_from_kept_spectra": "phase from the first read",
+    "tile_loop_map": "loop score per 16 px tile",
+}
+PREVIEW_TITLE = "magnified preview"
 
 
 def default_rate_range_bpm() -> tuple[float, float]:
@@ -65,11 +91,18 @@ def default_rate_range_bpm() -> tuple[float, float]:
     return tuple(float(v) for v in band)
 
 
-@thread_worker(start_thread=False)
+@thread_worker(start_thread=False, ignore_errors=True)  # errors are told by the panel, once
 def analysis_job(stack, rate_range_bpm, cancel, options):
-    """Generator worker: each engine tick is yielded (progress + cancel point); returns the result."""
+    """Generator worker: each engine tick is yielded (progress + cancel point).
+
+    Returns ``(result, preview)``: the magnified preview's frames when the
+    ``magnified_preview`` option is on and a rhythm was found, else None.
+    """
     result = yield from engine.iter_analyze(stack, rate_range_bpm, cancel=cancel, **options)
-    return result
+    preview = None
+    if options.get("magnified_preview") and not cancel():
+        preview = magnified_preview(result, stack)
+    return result, preview
 
 
 #: Axis labels napari layers use for time and for channels (lower case).
@@ -176,6 +209,7 @@ class AnalysisPanel(QWidget):
         self._stop_reported = False
         self._pending: list[tuple] = []
         self._pending_done = None
+        self._reused: dict = {}
         self._chosen = None  # the stack layer chosen (the object: it keeps its place across renames)
 
         form = QFormLayout()
@@ -217,6 +251,8 @@ class AnalysisPanel(QWidget):
             box.setDecimals(1)
             box.setValue(value)
             box.setSuffix(" bpm")
+            # wide enough for the longest value with its unit ("1200.0 bpm" was cut to "240.0 bpr")
+            box.setMinimumWidth(box.fontMetrics().horizontalAdvance("99999.9 bpm") + 28)
             band.addWidget(box)
         self.rate_lo.setToolTip("Lowest rate to look for, beats per minute.")
         self.rate_hi.setToolTip("Highest rate to look for, beats per minute (below the Nyquist rate).")
@@ -229,7 +265,7 @@ class AnalysisPanel(QWidget):
             self.option_widgets[opt.name] = widget
             if opt.name in COMBO_OPTIONS:
                 continue  # set through the specimen list above
-            (form if opt.name in PRIMARY_OPTIONS else more).addRow(opt.name.replace("_", " "), widget)
+            (form if opt.name in PRIMARY_OPTIONS else more).addRow(OPTION_LABELS.get(opt.name, opt.name), widget)
         more_box = QWidget()
         more_box.setLayout(more)
         self.more_options = QCollapsible("more options")
@@ -396,6 +432,7 @@ class AnalysisPanel(QWidget):
             opts = self.options()
         except TempofieldError as exc:
             self.status.setText(f"Not started: {exc}")
+            show_warning(f"tempofield: not started: {exc}")
             return
         layer = self._layer(self.layer_box.currentText())
         source = layer.name
@@ -407,7 +444,7 @@ class AnalysisPanel(QWidget):
         self._stop_reported = False
         worker = analysis_job(stack, band, self._cancel.is_set, opts)
         worker.yielded.connect(self._on_tick)
-        worker.returned.connect(lambda result: self._on_result(result, source, place))
+        worker.returned.connect(lambda out: self._on_result(*out, source, place))
         worker.errored.connect(self._on_error)
         worker.aborted.connect(lambda: self._on_stopped("cancelled"))
         worker.finished.connect(self._on_finished)
@@ -441,39 +478,61 @@ class AnalysisPanel(QWidget):
             self.status.setText(f"Analysing: {tick.stage}, {tick.done} of {tick.total} "
                                 f"({100 * tick.done / tick.total:.0f} %)")
 
-    def _on_result(self, result, source, place):
+    def _on_result(self, result, preview, source, place):
         self.last_result = result
-        self.remove_result_layers(source)
+        pending = list(result_layer_data(result, source, **place))
+        if preview is not None:
+            raw = self._layer(source)
+            pending.append((preview, {
+                "name": layer_name(source, PREVIEW_TITLE), "colormap": "gray", "visible": False,
+                "scale": tuple(raw.scale) if raw is not None and raw.ndim == 3 else None,
+                "metadata": {META_KEY: {"map": "magnified_preview", "source_layer": source,
+                                        "run_id": pending[0][1]["metadata"][META_KEY]["run_id"]}}}, "image"))
+        # The earlier run's layers of this source, by what they show: they are updated in place.
+        self._reused = {key: layer for layer in self.viewer.layers
+                        if (key := self._result_key(layer)) is not None and key[0] == source}
         # One layer per turn of the event loop: napari needs a few hundred ms to
         # build each layer's visual, and the viewer should not freeze for all of them.
-        self._pending = list(result_layer_data(result, source, **place))
+        self._pending = pending
         self._pending_done = (result, source)
         self._add_next_layer()
+
+    @staticmethod
+    def _result_key(layer):
+        """(source layer, map, layer type) of a result layer made by this panel or the reader, else None."""
+        info = layer.metadata.get(META_KEY)
+        if not (isinstance(info, dict) and "run_id" in info and info.get("map")):
+            return None
+        return info.get("source_layer"), info["map"], type(layer).__name__.lower()
 
     def _add_next_layer(self):
         if self._pending:
             data, kwargs, layer_type = self._pending.pop(0)
-            layer = getattr(self.viewer, f"add_{layer_type}")(data, **kwargs)
-            if layer_type == "labels":  # outlines over the maps
-                layer.contour = REGION_CONTOUR_PX
-                layer.opacity = 1.0
-                layer.visible = True
-            elif layer_type == "image" and hasattr(layer, "colorbar"):  # the map's colour bar, with its unit
-                layer.colorbar.visible = True
+            key = (self._pending_done[1], kwargs["metadata"][META_KEY]["map"], layer_type)
+            old = self._reused.pop(key, None)
+            if old is not None:
+                update_layer(old, data, kwargs, layer_type)
+            else:
+                kwargs = {k: v for k, v in kwargs.items() if v is not None}
+                layer = getattr(self.viewer, f"add_{layer_type}")(data, **kwargs)
+                if layer_type == "labels":  # outlines over the maps
+                    layer.contour = REGION_CONTOUR_PX
+                    layer.opacity = 1.0
+                    layer.visible = True
+                elif layer_type == "image" and hasattr(layer, "colorbar") and key[1] != "magnified_preview":
+                    layer.colorbar.visible = True  # the map's colour bar, with its unit
             QTimer.singleShot(0, self._add_next_layer)
             return
+        for layer in self._reused.values():  # maps the new run does not make (e.g. no velocity now)
+            if layer in self.viewer.layers:
+                self.viewer.layers.remove(layer)
+        self._reused = {}
         result, source = self._pending_done
         rate = [layer for layer in self.viewer.layers
-                if isinstance(layer.metadata.get(META_KEY), dict)
-                and layer.metadata[META_KEY].get("source_layer") == source and layer.metadata[META_KEY].get("map")
-                == "rate_bpm"]
+                if (key := self._result_key(layer)) is not None and key[:2] == (source, "rate_bpm")]
         if rate:  # hovering then reads the rate, not the raw intensity (the panel keeps its own choice of stack)
             self.viewer.layers.selection.active = rate[-1]
-        summary = result.summary()
-        self.status.setText(
-            f"Done in {time.perf_counter() - self._run_started:.1f} s: median rate "
-            f"{summary['rate_median_bpm']:.1f} bpm over {100 * summary['rhythmic_fraction']:.0f}% of the frame, "
-            f"{summary['n_regions']} region(s).")
+        self.status.setText(f"Done in {time.perf_counter() - self._run_started:.1f} s: {done_words(result)}")
         self._pending_done = None
         self._set_idle()
         self.analysis_finished.emit(source)
@@ -481,15 +540,20 @@ class AnalysisPanel(QWidget):
     def remove_result_layers(self, source: str) -> None:
         """Remove the result layers made from ``source`` by an earlier run."""
         for layer in list(self.viewer.layers):
-            info = layer.metadata.get(META_KEY)
-            if isinstance(info, dict) and info.get("source_layer") == source and "run_id" in info:
+            key = self._result_key(layer)
+            if key is not None and key[0] == source:
                 self.viewer.layers.remove(layer)
 
     def _on_error(self, exc):
         if isinstance(exc, CancelledError):
             self._on_stopped("cancelled")
-        else:
+            return
+        if isinstance(exc, TempofieldError):  # a problem with the input or the settings: its message, no traceback
+            self._on_stopped(str(exc))
+            show_error(f"tempofield: {exc}")
+        else:  # a fault of the program: the one notification carries the traceback for a bug report
             self._on_stopped(f"{type(exc).__name__}: {exc}")
+            notification_manager.receive_error(type(exc), exc, exc.__traceback__)
 
     def _on_stopped(self, why):
         if self._stop_reported:  # a cancel may arrive both as an abort and as CancelledError
@@ -517,4 +581,39 @@ class AnalysisPanel(QWidget):
         return self.worker is not None or self._pending_done is not None
 
 
-__all__ = ["AnalysisPanel", "analysis_job"]
+def done_words(result) -> str:
+    """The status line after a run: the headline numbers, or plainly that no rhythm was found."""
+    summary = result.summary()
+    n = summary["n_regions"]
+    if n == 0:
+        return (f"no rhythm found: no beating region ({100 * summary['rhythmic_fraction']:.1f}% of the pixels "
+                "passed the single-pixel test, which pure noise also does at the false-alarm rate).")
+    return (f"median rate {summary['rate_median_bpm']:.1f} bpm over {100 * summary['rhythmic_fraction']:.0f}% "
+            f"of the frame, {n} region(s).")
+
+
+def update_layer(layer, data, kwargs: dict, layer_type: str) -> None:
+    """Give an existing result layer a new run's data, limits and provenance, in place.
+
+    The user's display choices (visibility, colormap, opacity, name) stay; the
+    world transform follows the new source, so the maps keep overlaying it.
+    """
+    if layer_type == "vectors":
+        feature = kwargs["edge_color"]
+        layer.data = data
+        layer.features = kwargs["features"]
+        layer.edge_color = feature
+        layer.edge_contrast_limits = kwargs["edge_contrast_limits"]
+    else:
+        layer.data = data
+        if layer_type == "image":
+            lo, hi = kwargs.get("contrast_limits") or (float(data.min()), float(data.max()))
+            layer.contrast_limits_range = (lo, hi)
+            layer.contrast_limits = (lo, hi)
+    for name in ("scale", "translate"):
+        if kwargs.get(name) is not None:
+            setattr(layer, name, kwargs[name])
+    layer.metadata = kwargs["metadata"]
+
+
+__all__ = ["AnalysisPanel", "analysis_job", "update_layer"]

@@ -3,6 +3,9 @@
 The result is rebuilt from the layers (see :func:`._layers.result_from_layers`)
 and written by :meth:`tempofield.RhythmResult.save`, which writes beside the
 destination and renames into place, and never replaces an existing folder.
+The folder gets the same ``report.png`` as one written by ``tempofield analyze``
+(drawn from the maps and references; without the raw stack, its traces panel
+is left out).
 """
 
 from __future__ import annotations
@@ -10,6 +13,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from tempofield.errors import ResultExistsError
+from tempofield.outputs.report import report_writers
 
 from ._layers import result_from_layers
 
@@ -29,4 +33,4 @@ def write_result(path: str, layer_data: list[tuple]) -> list[str]:
         raise ResultExistsError(f"{str(dest)!r} already exists; nothing was written. "
                                 "Choose a new folder name for the result.")
     result = result_from_layers(layer_data)
-    return [str(result.save(dest))]
+    return [str(result.save(dest, extra_files=report_writers(result)))]
