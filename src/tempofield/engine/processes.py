@@ -5,6 +5,7 @@ spawned pool on one machine, or the workers of an active dask.distributed client
 from __future__ import annotations
 
 import importlib
+import os
 import sys
 import threading
 import warnings
@@ -60,10 +61,35 @@ def process_pool(n_workers: int):
 
         if _POOL is not None:
             _POOL[0].shutdown(wait=False, cancel_futures=True)
-        pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=multiprocessing.get_context("spawn"))
+        pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=watch_parent, initargs=(os.getpid(),))
         atexit.register(pool.shutdown, wait=False, cancel_futures=True)
         _POOL = (pool, n_workers)
     return _POOL[0]
+
+
+#: How often a worker process checks that the program that started it is still alive, seconds.
+PARENT_POLL_S = 0.5
+
+
+def watch_parent(parent_pid: int) -> None:
+    """Worker initializer: end this worker when its parent is gone.
+
+    A worker blocks on its task queue, whose pipe every sibling also holds
+    open, so a parent that crashed or was killed (no time to shut the pool
+    down) left its workers waiting for ever: a few hundred MB each, orphaned.
+    A daemon thread checks the parent's pid (on POSIX an orphan is re-parented,
+    so ``os.getppid`` changes) and exits the worker at once.
+    """
+    def watch():
+        import time
+
+        while True:
+            time.sleep(PARENT_POLL_S)
+            if os.getppid() != parent_pid:
+                os._exit(0)
+
+    threading.Thread(target=watch, name="tempofield-parent-watch", daemon=True).start()
 
 
 def main_is_guarded() -> bool:
