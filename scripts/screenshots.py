@@ -7,6 +7,7 @@ in the region inspector, and writes:
 
     docs/screenshots/viewer_rate_overlay.png    the window: rate map over the raw stack, analysis panel
     docs/screenshots/viewer_phase_overlay.png   the canvas: phase map over the raw stack
+    docs/screenshots/viewer_delay_overlay.png   the canvas: activation delay map with its colour bar
     docs/screenshots/region_inspector.png       the region inspector dock
 
 Usage: ``python scripts/screenshots.py [--out docs/screenshots]``.
@@ -117,7 +118,17 @@ def main(argv=None) -> int:
     path = out / "viewer_phase_overlay.png"
     viewer.screenshot(str(path), canvas_only=True, flash=False)
     paths.append(path)
-    rate.visible, phase.visible = True, False
+    delay = viewer.layers[f"delay (s) · {raw.name}"]
+    phase.visible, delay.visible = False, True
+    delay.opacity = 0.9
+    viewer.layers.selection.active = delay
+    for _ in range(10):
+        app.processEvents()
+    path = out / "viewer_delay_overlay.png"
+    viewer.screenshot(str(path), canvas_only=True, flash=False)
+    paths.append(path)
+    delay.visible, rate.visible = False, True
+    viewer.layers.selection.active = rate
 
     inspector = RegionInspector(viewer)
     viewer.window.add_dock_widget(inspector, name="Region inspector", area="right")

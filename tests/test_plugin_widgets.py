@@ -89,14 +89,14 @@ def test_run_adds_maps_equal_to_the_engine_and_rerun_replaces_them(panel, scene,
     run_panel(qtbot, panel)
     layers = {layer.name: layer for layer in result_layers(viewer, "well sheet")}
     expected = tempofield.analyze(engine_stack(scene), FAST_BAND, pooling_radius_px=2)
-    titles = ["rate (bpm)", "periodicity", "phase (rad)", "activation delay (s)", "regions"]
+    titles = ["rate (bpm)", "periodicity", "phase (rad)", "delay (s)", "regions"]
     if "velocity_x_um_s" in expected.extra_maps:  # once the engine measures conduction velocity
-        titles.append("conduction velocity")
+        titles.append("velocity")
     assert sorted(layers) == sorted(f"{t} · well sheet" for t in titles)
     rate, phase = layers["rate (bpm) · well sheet"], layers["phase (rad) · well sheet"]
     np.testing.assert_array_equal(rate.data, expected.rate_bpm)
     np.testing.assert_array_equal(phase.data, expected.phase_rad)
-    np.testing.assert_array_equal(layers["activation delay (s) · well sheet"].data, expected.delay_s)
+    np.testing.assert_array_equal(layers["delay (s) · well sheet"].data, expected.delay_s)
     np.testing.assert_array_equal(layers["periodicity · well sheet"].data, expected.periodicity)
     np.testing.assert_array_equal(layers["regions · well sheet"].data, expected.regions)
     assert np.nanmedian(rate.data) == pytest.approx(72.0, abs=1.0)
@@ -187,7 +187,7 @@ def test_velocity_field_becomes_a_vectors_layer(panel, scene, qtbot):
     place = {"scale": tuple(raw.scale[-2:]), "translate": tuple(raw.translate[-2:]), "units": raw.units[-2:]}
     with qtbot.waitSignal(panel.analysis_finished):
         panel._on_result(result, None, raw.name, place)
-    vec = panel.viewer.layers["conduction velocity · well sheet"]
+    vec = panel.viewer.layers["velocity · well sheet"]
     assert type(vec).__name__ == "Vectors"
     np.testing.assert_allclose(vec.scale, raw.scale[-2:])
     np.testing.assert_allclose(vec.features["speed_um_s"], 5000.0)
@@ -198,7 +198,7 @@ def test_velocity_field_becomes_a_vectors_layer(panel, scene, qtbot):
     result.extra_maps = {}
     with qtbot.waitSignal(panel.analysis_finished):
         panel._on_result(result, None, raw.name, place)
-    assert "conduction velocity · well sheet" not in panel.viewer.layers
+    assert "velocity · well sheet" not in panel.viewer.layers
 
 
 def test_channel_of_a_tcyx_layer(panel, scene, qtbot):
@@ -290,11 +290,11 @@ def test_results_are_readable_by_default(panel, scene, qtbot):
             assert layer.colorbar.visible, name
     lightness = np.asarray(rate.colormap.colors)[:, :3] @ [0.299, 0.587, 0.114]
     assert abs(lightness[-1] - lightness[0]) > 0.5
-    delay = layers["activation delay (s) · well sheet"]
+    delay = layers["delay (s) · well sheet"]
     finite = delay.data[np.isfinite(delay.data)]
     assert delay.contrast_limits == pytest.approx(list(np.percentile(finite, [1, 99])), rel=1e-5)
     assert delay.contrast_limits[1] < np.nanmax(panel.last_result.period_s)
-    vectors = [layer for name, layer in layers.items() if name.startswith("conduction velocity")]
+    vectors = [layer for name, layer in layers.items() if name.startswith("velocity")]
     for layer in vectors:
         assert not layer.visible
         speed = layer.features.iloc[:, 0].to_numpy()

@@ -52,13 +52,13 @@ class MapStyle:
 MAP_STYLES: dict[str, MapStyle] = {
     "periodicity": MapStyle("periodicity", "cividis", "unit", False),
     # the delay's range is the regions' own spread (a 0-0.3 s wave is not one flat colour in 0-1.5 s)
-    "delay_s": MapStyle("activation delay (s)", "plasma", "robust", False),
+    "delay_s": MapStyle("delay (s)", "plasma", "robust", False),  # activation delay; short so the list shows it whole
     "phase_rad": MapStyle("phase (rad)", "twilight", "cyclic", False),
     # perceptually uniform, its ends differ in lightness (so they stay apart in grey too)
     "rate_bpm": MapStyle("rate (bpm)", "viridis", "robust", True),
 }
 REGIONS_TITLE = "regions"
-VELOCITY_TITLE = "conduction velocity"
+VELOCITY_TITLE = "velocity"
 
 
 #: Longest part of a source's name kept in a layer name (its end: what tells stacks apart).
